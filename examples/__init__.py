@@ -1,0 +1,1 @@
+"""Examples shipped with winnow: the aquifer pumping-test demo (invented data)."""

@@ -1,0 +1,1 @@
+"""Aquifer pumping-test demo: Theis cheap model, finite-difference solver, templates, data."""

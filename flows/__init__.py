@@ -1,0 +1,1 @@
+"""Flows composing the winnow stages, Prefect blocks and the ``winnow`` command line."""
