@@ -1,0 +1,636 @@
+"""Study configuration: one YAML file per study, validated by pydantic models.
+
+Every model forbids unknown keys and every field carries a description (with its units where
+it has any), so ``winnow schema`` prints a JSON Schema that documents the whole file. Relative
+paths in a config are relative to the folder of the config file.
+
+Use :func:`load_config` to read a file: a bad file raises :class:`ConfigError`, whose message
+names the file, the field path and what was expected.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import shlex
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import yaml
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+__all__ = [
+    "CheckSettings",
+    "CollectSettings",
+    "ConfigError",
+    "DaskRunner",
+    "DispatchSettings",
+    "ImportSettings",
+    "ModelSettings",
+    "ObservationSettings",
+    "Parameter",
+    "Prior",
+    "QoISettings",
+    "SampleSettings",
+    "StudyConfig",
+    "StudySettings",
+    "ThinSettings",
+    "config_schema",
+    "format_validation_error",
+    "load_config",
+    "parse_config",
+]
+
+
+class ConfigError(ValueError):
+    """A study config that cannot be used; the message names the file and the field."""
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True)
+
+
+def _units(units: str) -> dict[str, Any]:
+    return {"units": units}
+
+
+# --------------------------------------------------------------------------------------------
+# parameters and priors
+# --------------------------------------------------------------------------------------------
+class Prior(_Model):
+    """Prior distribution of one parameter, in the parameter's own units."""
+
+    dist: Literal["uniform", "normal", "lognormal", "truncnormal"] = Field(
+        description="Prior family: uniform on [low, high]; normal(mu, sigma); lognormal with "
+        "log-space mu and sigma; truncnormal(mu, sigma) restricted to [low, high]."
+    )
+    low: float | None = Field(
+        None, description="Lower bound (parameter units). Required for uniform and truncnormal."
+    )
+    high: float | None = Field(
+        None, description="Upper bound (parameter units). Required for uniform and truncnormal."
+    )
+    mu: float | None = Field(
+        None,
+        description="Location: the mean for normal/truncnormal (parameter units), the mean of "
+        "log(x) for lognormal.",
+    )
+    sigma: float | None = Field(
+        None,
+        gt=0,
+        description="Scale: the standard deviation for normal/truncnormal (parameter units), of "
+        "log(x) for lognormal. Must be > 0.",
+    )
+
+    @model_validator(mode="after")
+    def _check_family(self) -> Prior:
+        needs = {
+            "uniform": ("low", "high"),
+            "normal": ("mu", "sigma"),
+            "lognormal": ("mu", "sigma"),
+            "truncnormal": ("mu", "sigma", "low", "high"),
+        }[self.dist]
+        missing = [k for k in needs if getattr(self, k) is None]
+        if missing:
+            raise ValueError(
+                f"a {self.dist} prior needs {', '.join(needs)}; missing: {', '.join(missing)}"
+            )
+        for k in ("low", "high", "mu", "sigma"):
+            v = getattr(self, k)
+            if v is not None and not math.isfinite(v):
+                raise ValueError(f"{k} must be a finite number, got {v}")
+        if self.low is not None and self.high is not None and not self.low < self.high:
+            raise ValueError(f"low must be < high, got low={self.low} and high={self.high}")
+        return self
+
+
+_NAME_PATTERN = r"^[A-Za-z_][A-Za-z0-9_]*$"
+
+
+class Parameter(_Model):
+    """One calibrated parameter of the cheap model."""
+
+    name: str = Field(
+        pattern=_NAME_PATTERN,
+        description="Identifier used in templates and outputs (letters, digits, underscore).",
+    )
+    units: str = Field(description="Units of the parameter, e.g. 'log10(m2/s)' or '-'.")
+    description: str = Field("", description="What the parameter is.")
+    prior: Prior = Field(description="Prior distribution in the parameter's units.")
+
+
+# --------------------------------------------------------------------------------------------
+# sample stage
+# --------------------------------------------------------------------------------------------
+class ModelSettings(_Model):
+    """The cheap model: a forward model with a likelihood, or a full log density."""
+
+    forward: str | None = Field(
+        None,
+        pattern=r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$",
+        description="Forward model 'module:function', called as f(theta, inputs) -> "
+        "predictions in the observation's units.",
+    )
+    log_density: str | None = Field(
+        None,
+        pattern=r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$",
+        description="Alternative to forward: 'module:function' returning the log posterior "
+        "density of theta (prior included).",
+    )
+    vectorised: Literal["auto", "yes", "no"] = Field(
+        "auto",
+        description="Whether the model takes a batch of parameter rows (k, d); 'auto' detects.",
+    )
+    search_path: str = Field(
+        ".",
+        description="Folder (relative to the config file) put on the import path for the model.",
+    )
+
+    @model_validator(mode="after")
+    def _one_model(self) -> ModelSettings:
+        if (self.forward is None) == (self.log_density is None):
+            raise ValueError("give exactly one of 'forward' or 'log_density'")
+        return self
+
+
+class NoiseSettings(_Model):
+    """Observation noise: a known value, a column of per-observation values, or estimated."""
+
+    value: float | None = Field(
+        None, gt=0, description="Known noise standard deviation, in the observation's units."
+    )
+    column: str | None = Field(
+        None, description="Column of the observation file holding per-observation sigmas."
+    )
+    estimate: Prior | None = Field(
+        None,
+        description="Estimate the noise standard deviation as an extra parameter 'sigma' "
+        "with this prior (observation units).",
+    )
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> NoiseSettings:
+        given = [k for k in ("value", "column", "estimate") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(
+                f"give exactly one of 'value', 'column' or 'estimate' (got {given or 'none'})"
+            )
+        return self
+
+
+class ObservationSettings(_Model):
+    """The measurements the cheap model is calibrated against (a CSV file with a header)."""
+
+    file: str = Field(description="CSV file of observations, relative to the config file.")
+    target: str = Field(description="Column holding the observed values.")
+    inputs: list[str] = Field(
+        default_factory=list,
+        description="Columns passed to the forward model in its inputs dict (e.g. times).",
+    )
+    constants: dict[str, float] = Field(
+        default_factory=dict,
+        description="Extra scalar inputs for the forward model (each in the model's units).",
+    )
+    noise: NoiseSettings = Field(description="Observation noise model.")
+    likelihood: Literal["gaussian", "student_t"] = Field(
+        "gaussian", description="Likelihood family; student_t is robust to outliers."
+    )
+    nu: float = Field(
+        4.0, gt=0, description="Degrees of freedom of the Student t likelihood (dimensionless)."
+    )
+
+
+class ImportSettings(_Model):
+    """An existing chain to import instead of sampling."""
+
+    file: str = Field(description="Chain file (.npy, .csv or .h5/.hdf5), relative to the config.")
+    dataset: str | None = Field(None, description="Dataset path inside an HDF5 file.")
+    chain_column: str | None = Field(None, description="CSV column naming each row's chain.")
+    draw_column: str | None = Field(None, description="CSV column giving each row's draw number.")
+    chains: int | None = Field(
+        None, ge=1, description="Split an (N, d) array into this many consecutive chains."
+    )
+
+
+class CheckSettings(_Model):
+    """Convergence thresholds checked before any costly run is spent."""
+
+    rhat_max: float = Field(
+        1.01, gt=1.0, description="Largest acceptable rank-normalised split R-hat (dimensionless)."
+    )
+    ess_bulk_min: float = Field(
+        400.0, gt=0, description="Smallest acceptable bulk effective sample size (draws)."
+    )
+    ess_tail_min: float = Field(
+        400.0, gt=0, description="Smallest acceptable tail effective sample size (draws)."
+    )
+    on_failure: Literal["stop", "warn"] = Field(
+        "stop",
+        description="'stop' ends the study before thinning when a threshold fails; 'warn' goes "
+        "on and records the warning.",
+    )
+
+
+class SampleSettings(_Model):
+    """Sample stage: calibrate the cheap model, or import a chain."""
+
+    model: ModelSettings | None = Field(None, description="The cheap model to calibrate.")
+    observations: ObservationSettings | None = Field(
+        None, description="Observations for a forward model."
+    )
+    import_chain: ImportSettings | None = Field(
+        None, description="Import this chain instead of sampling."
+    )
+    sampler: Literal["adaptive_metropolis", "ensemble"] = Field(
+        "adaptive_metropolis",
+        description="adaptive_metropolis (Haario et al. 2001) or ensemble (affine-invariant "
+        "stretch move, Goodman & Weare 2010).",
+    )
+    chains: int = Field(4, ge=1, le=256, description="Number of chains (or ensemble walkers).")
+    draws: int = Field(4000, ge=10, description="Draws per chain, burn-in included.")
+    burn_in: int | Literal["half"] = Field(
+        "half", description="Draws dropped from the start of each chain, or 'half'."
+    )
+    checks: CheckSettings = Field(
+        default_factory=CheckSettings, description="Convergence thresholds."
+    )
+
+    @model_validator(mode="after")
+    def _source(self) -> SampleSettings:
+        if self.import_chain is not None:
+            if self.model is not None:
+                raise ValueError("give either 'model' (to sample) or 'import_chain', not both")
+            return self
+        if self.model is None:
+            raise ValueError("give 'model' (to sample) or 'import_chain' (to import a chain)")
+        if self.model.forward is not None and self.observations is None:
+            raise ValueError("a forward model needs 'observations'")
+        if isinstance(self.burn_in, int) and not 0 <= self.burn_in < self.draws:
+            raise ValueError(f"burn_in must be in [0, draws={self.draws}), got {self.burn_in}")
+        return self
+
+
+# --------------------------------------------------------------------------------------------
+# thin stage
+# --------------------------------------------------------------------------------------------
+class ThinSettings(_Model):
+    """Thin stage: which points to spend the costly runs on."""
+
+    method: Literal["greedy", "swap", "genetic", "random", "stride"] = Field(
+        "greedy",
+        description="Selector: greedy MMD minimisation, greedy then swap refinement, genetic "
+        "algorithm seeded by greedy, or the random/stride baselines.",
+    )
+    weights: Literal["simplex", "uniform"] = Field(
+        "simplex", description="Optimal MMD weights on the simplex, or equal weights."
+    )
+    kernel: Literal["gaussian", "laplace", "matern32", "matern52"] = Field(
+        "gaussian", description="Kernel of the MMD, on standardised coordinates."
+    )
+    bandwidth: float | None = Field(
+        None,
+        gt=0,
+        description="Kernel bandwidth in standardised units; median heuristic when omitted.",
+    )
+    feature_map: Literal["rff", "orf", "qmc"] = Field(
+        "orf",
+        description="Random Fourier features, orthogonal random features, or quasi-Monte "
+        "Carlo frequencies.",
+    )
+    features: int | Literal["auto"] = Field(
+        "auto", description="Number of random features, or 'auto' (doubling until stable)."
+    )
+
+    @field_validator("features")
+    @classmethod
+    def _positive_features(cls, v: int | str) -> int | str:
+        if isinstance(v, int) and v < 1:
+            raise ValueError(f"features must be a positive integer or 'auto', got {v}")
+        return v
+
+
+# --------------------------------------------------------------------------------------------
+# dispatch stage
+# --------------------------------------------------------------------------------------------
+class LocalClusterSettings(_Model):
+    n_workers: int = Field(2, ge=1, description="Worker processes of the local Dask cluster.")
+    threads_per_worker: int = Field(1, ge=1, description="Threads per Dask worker.")
+
+
+class DaskSettings(_Model):
+    address: str | None = Field(
+        None, description="Address of a running Dask scheduler, e.g. 'tcp://10.0.0.5:8786'."
+    )
+    local_cluster: LocalClusterSettings | None = Field(
+        None, description="Start a Dask LocalCluster with these settings."
+    )
+
+    @model_validator(mode="after")
+    def _one(self) -> DaskSettings:
+        if (self.address is None) == (self.local_cluster is None):
+            raise ValueError("give exactly one of 'address' or 'local_cluster'")
+        return self
+
+
+class DaskRunner(_Model):
+    """Run on a Dask cluster."""
+
+    dask: DaskSettings = Field(description="Dask cluster to run on.")
+
+
+class BatchSettings(_Model):
+    submit: list[str] = Field(
+        default_factory=lambda: ["sbatch"],
+        description="Submit command (argv) that takes the job script path as last argument.",
+    )
+    template: str | None = Field(
+        None,
+        description="Job script template (Jinja2), relative to the config; built-in if omitted.",
+    )
+    poll_seconds: float = Field(5.0, gt=0, description="Seconds between completion checks (s).")
+
+
+class BatchRunner(_Model):
+    """Run through a batch scheduler: one job script per run."""
+
+    batch: BatchSettings = Field(description="Batch scheduler settings.")
+
+
+_RUNNER_TAGS = ("local", "dask", "batch")
+
+
+def _runner_kind(v: Any) -> str | None:
+    # A tag per shape keeps a bad runner to one error message instead of one per union member.
+    if isinstance(v, str):
+        return "local"
+    keys = set(v) if isinstance(v, dict) else set(getattr(v, "model_fields_set", ()))
+    for kind in ("dask", "batch"):
+        if kind in keys:
+            return kind
+    return None
+
+
+def _argv_list(v: Any) -> Any:
+    if isinstance(v, str):
+        raise ValueError(
+            "the solver command must be a list of arguments, not one shell string; "
+            f"for example {shlex.split(v)!r}"
+        )
+    return v
+
+
+class DispatchSettings(_Model):
+    """Dispatch stage: input decks and solver runs."""
+
+    templates: list[str] = Field(
+        min_length=1,
+        description="Deck templates (Jinja2), relative to the config; each is rendered into the "
+        "run folder under its name without a trailing '.j2'.",
+    )
+    copy_files: list[str] = Field(
+        default_factory=list,
+        alias="copy",
+        description="Files copied unchanged into every run folder (meshes, tables).",
+    )
+    link_files: list[str] = Field(
+        default_factory=list,
+        alias="link",
+        description="Files linked (symlink) into every run folder.",
+    )
+    constants: dict[str, Any] = Field(
+        default_factory=dict, description="User constants available in the templates."
+    )
+    formats: dict[str, str] = Field(
+        default_factory=dict,
+        description="Format spec per parameter for fixed-width decks, e.g. {'log10_T': '.6e'}; "
+        "shortest round-trip text by default.",
+    )
+    command: Annotated[list[str], Field(min_length=1)] = Field(
+        description="Solver command as an argument list (never a shell string); placeholders "
+        "{deck} (first rendered deck) and {run_dir}."
+    )
+    env: dict[str, str] = Field(
+        default_factory=dict, description="Extra environment variables for the solver."
+    )
+    outputs: list[str] = Field(
+        default_factory=list,
+        description="Output files (relative to the run folder) a successful run must leave.",
+    )
+    timeout: float = Field(3600.0, gt=0, description="Wall-time limit of one attempt (s).")
+    retries: int = Field(0, ge=0, le=20, description="Extra attempts after a failed one.")
+    retry_delay: float = Field(0.0, ge=0, description="Pause before a retry (s).")
+    concurrency: int = Field(2, ge=1, le=1024, description="Runs at the same time.")
+    runner: Annotated[
+        Annotated[Literal["local"], Tag("local")]
+        | Annotated[DaskRunner, Tag("dask")]
+        | Annotated[BatchRunner, Tag("batch")],
+        Discriminator(
+            _runner_kind,
+            custom_error_type="runner_kind",
+            custom_error_message="expected 'local', {dask: {address | local_cluster}} or "
+            "{batch: {submit, template, poll_seconds}}",
+        ),
+    ] = Field("local", description="'local' processes, {dask: ...} or {batch: ...}.")
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    _check_command = field_validator("command", mode="before")(_argv_list)
+
+
+# --------------------------------------------------------------------------------------------
+# collect stage
+# --------------------------------------------------------------------------------------------
+class QoISettings(_Model):
+    """One quantity of interest read from every run."""
+
+    name: str = Field(pattern=_NAME_PATTERN, description="Name of the quantity of interest.")
+    units: str = Field(description="Units of the quantity, e.g. 'm'.")
+    description: str = Field("", description="What the quantity is.")
+    reader: dict[str, Any] = Field(
+        description="How to read it from a run folder: {json: {file, key}}, {csv: {file, "
+        "column, row}}, {hdf5: {file, dataset}}, {regex: {file, pattern, group}} or "
+        "{function: 'module:function'}."
+    )
+    cheap_qoi: str | None = Field(
+        None,
+        pattern=r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$",
+        description="'module:function' giving the cheap model's prediction of this quantity "
+        "for a batch of parameter rows (k, d) -> (k,); enables the thinning-error check and "
+        "the multi-fidelity estimate.",
+    )
+    thresholds: list[float] = Field(
+        default_factory=list,
+        description="Values whose exceedance probability is reported (quantity's units).",
+    )
+
+    @field_validator("reader")
+    @classmethod
+    def _one_reader(cls, v: dict[str, Any]) -> dict[str, Any]:
+        kinds = ("json", "csv", "hdf5", "regex", "function")
+        keys = [k for k in v if k in kinds]
+        if len(keys) != 1 or len(v) != 1:
+            raise ValueError(f"give exactly one reader among {', '.join(kinds)}; got {list(v)}")
+        return v
+
+
+class CollectSettings(_Model):
+    """Collect stage: estimates and their uncertainty."""
+
+    qoi: list[QoISettings] = Field(min_length=1, description="Quantities of interest.")
+    quantiles: list[float] = Field(
+        default_factory=lambda: [0.05, 0.5, 0.95],
+        description="Probabilities of the reported weighted quantiles (dimensionless).",
+    )
+    bootstrap: int = Field(
+        1000, ge=0, description="Weighted bootstrap resamples for the resampling error (0: off)."
+    )
+
+    @field_validator("quantiles")
+    @classmethod
+    def _in_unit_interval(cls, v: list[float]) -> list[float]:
+        bad = [q for q in v if not 0.0 < q < 1.0]
+        if bad:
+            raise ValueError(f"quantile probabilities must be in (0, 1), got {bad}")
+        return v
+
+
+# --------------------------------------------------------------------------------------------
+# the study
+# --------------------------------------------------------------------------------------------
+class StudySettings(_Model):
+    name: str = Field(
+        pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$",
+        description="Study name (letters, digits, '-', '_', '.'), shown in flow run names.",
+    )
+    description: str = Field("", description="One line on what the study predicts.")
+    seed: int = Field(
+        0, ge=0, description="Seed of every random choice in the study (sampling, thinning)."
+    )
+
+
+class StudyConfig(_Model):
+    """A whole study: sample -> thin -> dispatch -> collect, recorded in one run store."""
+
+    study: StudySettings = Field(description="Name, description and seed.")
+    store: str = Field(description="HDF5 run store of the study, relative to the config file.")
+    work_dir: str = Field(
+        description="Folder of the run folders (one per chosen point), relative to the config."
+    )
+    budget: int = Field(gt=0, description="Number of costly solver runs (chosen points).")
+    parameters: list[Parameter] = Field(min_length=1, description="Calibrated parameters.")
+    sample: SampleSettings = Field(description="Sample stage settings.")
+    thin: ThinSettings = Field(default_factory=ThinSettings, description="Thin stage settings.")
+    dispatch: DispatchSettings = Field(description="Dispatch stage settings.")
+    collect: CollectSettings = Field(description="Collect stage settings.")
+
+    @model_validator(mode="after")
+    def _names(self) -> StudyConfig:
+        names = [p.name for p in self.parameters]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise ValueError(f"parameter names must be unique; repeated: {dup}")
+        clash = sorted(set(names) & set(self.dispatch.constants))
+        if clash:
+            raise ValueError(f"dispatch.constants repeat parameter names: {clash}")
+        return self
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(p.name for p in self.parameters)
+
+    @property
+    def units(self) -> tuple[str, ...]:
+        return tuple(p.units for p in self.parameters)
+
+
+# --------------------------------------------------------------------------------------------
+# loading
+# --------------------------------------------------------------------------------------------
+def format_validation_error(exc: ValidationError, source: str) -> str:
+    """One line per problem: ``source: field.path: message (got value)``."""
+    lines = []
+    for err in exc.errors(include_url=False):
+        parts = [str(p) for p in err["loc"]]
+        # a tagged union adds its tag to the path (runner.dask.dask...); drop the repeat
+        parts = [
+            p
+            for i, p in enumerate(parts)
+            if not (i and parts[i - 1] == "runner" and p in _RUNNER_TAGS)
+        ]
+        loc = ".".join(parts)
+        msg = err["msg"].removeprefix("Value error, ")
+        got = err.get("input")
+        shown = "" if err["type"] == "missing" or isinstance(got, dict) else f" (got {got!r})"
+        lines.append(f"{source}: {loc or '<top>'}: {msg}{shown}")
+    return "\n".join(lines)
+
+
+def parse_config(data: Any, *, source: str = "<config>") -> StudyConfig:
+    """Validate an already-parsed mapping; raise :class:`ConfigError` naming ``source``."""
+    if not isinstance(data, dict):
+        raise ConfigError(
+            f"{source}: expected a mapping of settings at the top level, got {type(data).__name__}"
+        )
+    try:
+        return StudyConfig.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(format_validation_error(exc, source)) from None
+
+
+def load_config(path: str | Path) -> tuple[StudyConfig, str]:
+    """Read and validate a study config file.
+
+    Parameters
+    ----------
+    path : str or Path
+        YAML file.
+
+    Returns
+    -------
+    config : StudyConfig
+    text : str
+        The file's text as read (it is stored, and hashed, in the run store).
+
+    Raises
+    ------
+    ConfigError
+        The file is missing, is not YAML, or does not validate; the message names the file,
+        the field path and what was expected.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: config file not found") from None
+    except (IsADirectoryError, UnicodeDecodeError, PermissionError) as exc:
+        raise ConfigError(f"{path}: cannot read the config file ({exc})") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{path}: not valid YAML: {exc}") from None
+    return parse_config(data, source=str(path)), text
+
+
+def config_hash(text: str) -> str:
+    """SHA-256 of a config's text (hex)."""
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def config_schema() -> dict[str, Any]:
+    """The JSON Schema of a study config."""
+    return StudyConfig.model_json_schema(by_alias=True)
+
+
+def resolve(config_path: str | Path, relative: str) -> Path:
+    """A path from a config, resolved against the config file's folder."""
+    p = Path(relative).expanduser()
+    return p if p.is_absolute() else (Path(config_path).resolve().parent / p)

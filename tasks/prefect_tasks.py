@@ -1,0 +1,71 @@
+"""Prefect tasks wrapping winnow's stage functions, for use in users' own flows.
+
+Each task is a thin wrapper: the work is done by a plain function of :mod:`winnow.tasks`
+that can be called (and is tested) without Prefect. Retries are off for the numerical stages,
+whose failures are deterministic; the per-run solver task (in :mod:`winnow.flows.dispatch`)
+carries the retries configured for the solver.
+
+Examples
+--------
+>>> from prefect import flow
+>>> from winnow.tasks import thin_task
+>>> @flow
+... def my_flow(samples):
+...     return thin_task(samples, 20, method="greedy", rng=1)
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+from prefect import task
+
+from . import stages
+from .config import StudyConfig
+from .records import Chain, RunSpec, Selection
+
+__all__ = [
+    "collect_task",
+    "prepare_runs_task",
+    "sample_task",
+    "thin_task",
+    "thin_stage_task",
+]
+
+
+@task(name="thin", task_run_name="thin-{budget}-points", retries=0)
+def thin_task(samples: npt.ArrayLike | Chain, budget: int, **options: Any) -> Selection:
+    """Choose ``budget`` weighted points of ``samples`` by MMD (see :func:`winnow.tasks.thinning.thin`)."""
+    from .thinning import thin
+
+    data = samples.samples if isinstance(samples, Chain) else np.asarray(samples)
+    return thin(data, budget, **options)
+
+
+@task(name="sample", task_run_name="sample-{config.study.name}")
+def sample_task(config: StudyConfig, base_dir: Path, **kwargs: Any) -> Chain:
+    """Calibrate the study's cheap model or import its chain (see :func:`stages.sample_stage`)."""
+    return stages.sample_stage(config, Path(base_dir), **kwargs)
+
+
+@task(name="thin-stage", task_run_name="thin-{config.study.name}-{config.budget}-points")
+def thin_stage_task(config: StudyConfig, chain: Chain, **kwargs: Any) -> Selection:
+    """Thin a study's chain with the study's settings (see :func:`stages.thin_stage`)."""
+    return stages.thin_stage(config, chain, **kwargs)
+
+
+@task(name="render-decks", task_run_name="render-decks-{config.study.name}")
+def prepare_runs_task(
+    config: StudyConfig, base_dir: Path, chain: Chain, selection: Selection, **kwargs: Any
+) -> list[RunSpec]:
+    """Render one run folder per chosen point (see :func:`stages.prepare_runs`)."""
+    return stages.prepare_runs(config, Path(base_dir), chain, selection, **kwargs)
+
+
+@task(name="collect", task_run_name="collect-{config.study.name}")
+def collect_task(config: StudyConfig, base_dir: Path, *args: Any, **kwargs: Any):
+    """Read the QoIs and make the weighted estimates (see :func:`stages.collect_stage`)."""
+    return stages.collect_stage(config, Path(base_dir), *args, **kwargs)

@@ -1,0 +1,342 @@
+"""The four stages driven by a study config, as plain functions (no Prefect).
+
+Each function takes the validated :class:`~winnow.tasks.config.StudyConfig`, the folder that
+relative paths in it are relative to, and the records produced by earlier stages; it returns
+the record of its own stage. The Prefect tasks in :mod:`winnow.tasks.prefect_tasks` wrap these,
+and the study flow writes what they return to the run store. Nothing here touches the store.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .config import StudyConfig, resolve
+from .records import Chain, QoIEstimate, QoIValue, RunOutcome, RunSpec, Selection
+
+__all__ = [
+    "ConvergenceError",
+    "Observations",
+    "cheap_predictions",
+    "collect_stage",
+    "prepare_runs",
+    "read_observations",
+    "sample_stage",
+    "thin_stage",
+]
+
+Progress = Callable[[int, int, str], None]
+
+
+class ConvergenceError(RuntimeError):
+    """The chain failed its convergence thresholds; the study stops before thinning."""
+
+
+# --------------------------------------------------------------------------------------------
+# observations
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Observations:
+    """Observation table read from the config's CSV file: one float64 array per column."""
+
+    path: Path
+    columns: dict[str, np.ndarray]
+
+    @property
+    def n(self) -> int:
+        return len(next(iter(self.columns.values()))) if self.columns else 0
+
+
+def read_observations(path: Path, required: Sequence[str]) -> Observations:
+    """Read a CSV observation file with a header row; every cell must be a finite number.
+
+    Raises
+    ------
+    ValueError
+        Naming the file, the line and the column of the first bad cell, or a missing column.
+    """
+    if not path.is_file():
+        raise FileNotFoundError(f"{path}: observation file not found")
+    with path.open(newline="", encoding="utf-8") as fh:
+        rows = [r for r in csv.reader(fh) if r and not r[0].lstrip().startswith("#")]
+    if len(rows) < 2:
+        raise ValueError(f"{path}: expected a header row and at least one data row")
+    header = [h.strip() for h in rows[0]]
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise ValueError(f"{path}: missing column(s) {missing}; the file has {header}")
+    data: dict[str, list[float]] = {h: [] for h in header}
+    for lineno, row in enumerate(rows[1:], start=2):
+        if len(row) != len(header):
+            raise ValueError(f"{path}: line {lineno} has {len(row)} cells, expected {len(header)}")
+        for h, cell in zip(header, row, strict=True):
+            try:
+                v = float(cell)
+            except ValueError:
+                raise ValueError(
+                    f"{path}: line {lineno}, column {h!r}: expected a number, got {cell!r}"
+                ) from None
+            if not math.isfinite(v):
+                raise ValueError(
+                    f"{path}: line {lineno}, column {h!r}: missing or non-finite value {cell!r}"
+                )
+            data[h].append(v)
+    return Observations(path, {h: np.asarray(v, dtype=np.float64) for h, v in data.items()})
+
+
+# --------------------------------------------------------------------------------------------
+# sample
+# --------------------------------------------------------------------------------------------
+def _thresholds(config: StudyConfig) -> dict[str, float]:
+    c = config.sample.checks
+    return {"rhat_max": c.rhat_max, "ess_bulk_min": c.ess_bulk_min, "ess_tail_min": c.ess_tail_min}
+
+
+def sample_stage(
+    config: StudyConfig,
+    base_dir: Path,
+    *,
+    progress: Progress | None = None,
+    checkpoint: Callable[[dict[str, Any]], None] | None = None,
+    resume: dict[str, Any] | None = None,
+) -> Chain:
+    """Calibrate the cheap model (or import a chain) and diagnose convergence.
+
+    Returns the chain with its diagnostics. Raises :class:`ConvergenceError` when a threshold
+    fails and the config says ``on_failure: stop``.
+    """
+    from . import diagnostics as diag
+    from . import sampling
+    from .chainfiles import read_chain_file
+
+    s = config.sample
+    if s.import_chain is not None:
+        imp = s.import_chain
+        chain = read_chain_file(
+            resolve(base_dir / "x", imp.file),
+            dataset=imp.dataset,
+            names=list(config.names),
+            units=list(config.units),
+            chain_column=imp.chain_column,
+            draw_column=imp.draw_column,
+        )
+        chain = diag.diagnose_chain(
+            chain,
+            chains=imp.chains,
+            burn_in=s.burn_in,
+            thresholds=_thresholds(config),
+        )
+    else:
+        assert s.model is not None  # guaranteed by SampleSettings validation
+        priors = [
+            {"name": p.name, "units": p.units, **p.prior.model_dump()} for p in config.parameters
+        ]
+        search = resolve(base_dir / "x", s.model.search_path)
+        if s.model.forward is not None:
+            assert s.observations is not None
+            obs_cfg = s.observations
+            needed = [obs_cfg.target, *obs_cfg.inputs]
+            if obs_cfg.noise.column:
+                needed.append(obs_cfg.noise.column)
+            obs = read_observations(resolve(base_dir / "x", obs_cfg.file), needed)
+            inputs: dict[str, Any] = {k: obs.columns[k] for k in obs_cfg.inputs}
+            inputs.update(obs_cfg.constants)
+            if obs_cfg.noise.value is not None:
+                sigma: Any = obs_cfg.noise.value
+            elif obs_cfg.noise.column is not None:
+                sigma = obs.columns[obs_cfg.noise.column]
+            else:
+                assert obs_cfg.noise.estimate is not None
+                sigma = {"estimate": obs_cfg.noise.estimate.model_dump()}
+            log_post = sampling.build_log_posterior(
+                priors,
+                forward=sampling.load_callable(s.model.forward, search_path=search),
+                inputs=inputs,
+                observations=obs.columns[obs_cfg.target],
+                sigma=sigma,
+                likelihood=obs_cfg.likelihood,
+                nu=obs_cfg.nu,
+                vectorised=s.model.vectorised,
+            )
+        else:
+            log_post = sampling.build_log_posterior(
+                priors,
+                log_density=sampling.load_callable(s.model.log_density, search_path=search),
+                vectorised=s.model.vectorised,
+            )
+        chain = sampling.sample(
+            log_post,
+            priors,
+            sampler=s.sampler,
+            n_chains=s.chains,
+            n_draws=s.draws,
+            burn_in=s.burn_in,
+            rng=config.study.seed,
+            progress=progress,
+            checkpoint=checkpoint,
+            resume=resume,
+            thresholds=_thresholds(config),
+        )
+    d = chain.diagnostics
+    if d is not None and not d.passed and s.checks.on_failure == "stop":
+        raise ConvergenceError(
+            "the chain did not converge; no costly run was started:\n  "
+            + "\n  ".join(d.messages)
+            + "\nRun longer chains, or set sample.checks.on_failure: warn to go on anyway."
+        )
+    return chain
+
+
+# --------------------------------------------------------------------------------------------
+# thin
+# --------------------------------------------------------------------------------------------
+def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None = None) -> Selection:
+    """Choose ``config.budget`` weighted points of the chain by MMD."""
+    from .thinning import thin
+
+    t = config.thin
+    return thin(
+        chain.samples,
+        config.budget,
+        kernel=t.kernel,
+        bandwidth=t.bandwidth,
+        method=t.method,
+        weights=t.weights,
+        feature_map=t.feature_map,
+        n_features=t.features,
+        rng=config.study.seed,
+        progress=progress,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# dispatch (deck rendering; running is the dispatch flow's job)
+# --------------------------------------------------------------------------------------------
+def prepare_runs(
+    config: StudyConfig,
+    base_dir: Path,
+    chain: Chain,
+    selection: Selection,
+    *,
+    positions: Sequence[int] | None = None,
+) -> list[RunSpec]:
+    """Render one run folder per chosen point (or per listed position) and return the specs."""
+    from .dispatch import DeckSpec, point_run_id, render_run
+
+    d = config.dispatch
+    decks = DeckSpec(
+        templates=[resolve(base_dir / "x", t) for t in d.templates],
+        copies=[resolve(base_dir / "x", c) for c in d.copy_files],
+        links=[resolve(base_dir / "x", c) for c in d.link_files],
+        constants=dict(d.constants),
+        formats=dict(d.formats),
+    )
+    run_root = resolve(base_dir / "x", config.work_dir)
+    run_root.mkdir(parents=True, exist_ok=True)
+    specs = []
+    for k in range(selection.m) if positions is None else positions:
+        params = {n: float(v) for n, v in zip(chain.names, selection.points[k], strict=True)}
+        idx = int(selection.indices[k])
+        specs.append(
+            render_run(
+                params,
+                run_id=point_run_id(idx, params),
+                point_index=idx,
+                weight=float(selection.weights[k]),
+                run_root=run_root,
+                decks=decks,
+                command=list(d.command),
+                template_root=base_dir,
+            )
+        )
+    return specs
+
+
+# --------------------------------------------------------------------------------------------
+# collect
+# --------------------------------------------------------------------------------------------
+def cheap_predictions(
+    config: StudyConfig, base_dir: Path, chain: Chain, selection: Selection
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Evaluate each QoI's cheap prediction on every chain row and on the chosen points.
+
+    Returns ``{qoi name: (on_chain (n, ...), on_points (m, ...))}`` for the QoIs that name one.
+    """
+    from .sampling import load_callable
+
+    search = (
+        resolve(base_dir / "x", config.sample.model.search_path)
+        if config.sample.model
+        else base_dir
+    )
+    out = {}
+    for q in config.collect.qoi:
+        if q.cheap_qoi is None:
+            continue
+        f = load_callable(q.cheap_qoi, search_path=search)
+        on_chain = np.asarray(f(chain.samples), dtype=np.float64)
+        if on_chain.shape[:1] != (chain.n,):
+            raise ValueError(
+                f"collect.qoi[{q.name}].cheap_qoi: {q.cheap_qoi} returned shape {on_chain.shape} "
+                f"for {chain.n} rows; expected ({chain.n},) or ({chain.n}, k)"
+            )
+        out[q.name] = (on_chain, on_chain[selection.indices])
+    return out
+
+
+def collect_stage(
+    config: StudyConfig,
+    base_dir: Path,
+    chain: Chain,
+    selection: Selection,
+    specs: Sequence[RunSpec],
+    outcomes: Mapping[str, RunOutcome],
+    *,
+    rng: Any = None,
+) -> tuple[list[QoIValue], list[QoIEstimate]]:
+    """Read every QoI from every run and make the weighted estimates with their uncertainty."""
+    from .collect import estimate_qoi, read_qoi
+    from .thinning import resolve_weights_for
+
+    cheap = cheap_predictions(config, base_dir, chain, selection)
+    positions = {s.run_id: k for k, s in enumerate(specs)}
+    ess = None
+    if chain.diagnostics is not None:
+        ess = min(p.ess_bulk for p in chain.diagnostics.parameters.values())
+    rng = np.random.default_rng(config.study.seed if rng is None else rng)
+    values: list[QoIValue] = []
+    estimates: list[QoIEstimate] = []
+    for q in config.collect.qoi:
+        spec_dict = {"name": q.name, "units": q.units, "reader": q.reader}
+        vals = []
+        for s in specs:
+            o = outcomes.get(s.run_id)
+            state = o.state if o is not None else "not_run"
+            vals.append(read_qoi(s.run_dir, spec_dict, run_id=s.run_id, run_state=state))
+        values.extend(vals)
+        order = [positions[v.run_id] for v in vals]
+        weights = selection.weights[order]
+        on_chain, on_points = cheap.get(q.name, (None, None))
+        estimates.append(
+            estimate_qoi(
+                vals,
+                weights,
+                name=q.name,
+                units=q.units,
+                quantiles=tuple(config.collect.quantiles),
+                thresholds=tuple(q.thresholds),
+                cheap_on_points=None if on_points is None else on_points[order],
+                cheap_on_chain=on_chain,
+                chain_ess=ess,
+                resolve_weights=resolve_weights_for(chain.samples, selection, order),
+                bootstrap=config.collect.bootstrap,
+                rng=rng,
+            )
+        )
+    return values, estimates
