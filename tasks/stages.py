@@ -340,3 +340,96 @@ def collect_stage(
             )
         )
     return values, estimates
+
+
+# --------------------------------------------------------------------------------------------
+# preflight: everything that can be checked before anything is written
+# --------------------------------------------------------------------------------------------
+def _prior_midpoint(p) -> float:
+    pr = p.prior
+    if pr.dist in ("uniform",):
+        return 0.5 * (pr.low + pr.high)
+    if pr.dist == "lognormal":
+        return float(math.exp(pr.mu))
+    if pr.dist == "truncnormal":
+        return float(min(max(pr.mu, pr.low), pr.high))
+    return float(pr.mu)
+
+
+def preflight(config: StudyConfig, base_dir: Path) -> None:
+    """Check a study's files, model, templates and command without writing anything.
+
+    Raises
+    ------
+    ValueError, FileNotFoundError
+        Naming the config field and the file or value at fault.
+    """
+    import shutil
+
+    from .dispatch import DeckSpec, check_templates
+    from .sampling import load_callable
+
+    here = Path(base_dir) / "x"
+    s = config.sample
+    search = resolve(here, s.model.search_path) if s.model else Path(base_dir)
+    if s.model is not None:
+        spec = s.model.forward or s.model.log_density
+        field = "sample.model.forward" if s.model.forward else "sample.model.log_density"
+        try:
+            load_callable(spec, search_path=search)
+        except (ImportError, AttributeError, ValueError, TypeError) as exc:
+            raise ValueError(f"{field}: {exc}") from None
+    if s.observations is not None:
+        o = s.observations
+        needed = [o.target, *o.inputs] + ([o.noise.column] if o.noise.column else [])
+        read_observations(resolve(here, o.file), needed)
+    if s.import_chain is not None:
+        from .chainfiles import read_chain_file
+
+        imp = s.import_chain
+        chain = read_chain_file(
+            resolve(here, imp.file),
+            dataset=imp.dataset,
+            names=list(config.names),
+            units=list(config.units),
+            chain_column=imp.chain_column,
+            draw_column=imp.draw_column,
+        )
+        finite = chain.samples[np.isfinite(chain.samples).all(axis=1)]
+        distinct = len(np.unique(finite, axis=0)) if finite.size else 0
+        if config.budget > distinct:
+            raise ValueError(
+                f"budget: {config.budget} is larger than the {distinct} distinct finite rows "
+                f"of sample.import_chain.file {imp.file}"
+            )
+    for q in config.collect.qoi:
+        if q.cheap_qoi:
+            try:
+                load_callable(q.cheap_qoi, search_path=search)
+            except (ImportError, AttributeError, ValueError, TypeError) as exc:
+                raise ValueError(f"collect.qoi[{q.name}].cheap_qoi: {exc}") from None
+    d = config.dispatch
+    for field, items in (
+        ("templates", d.templates),
+        ("copy", d.copy_files),
+        ("link", d.link_files),
+    ):
+        for i, rel in enumerate(items):
+            if not resolve(here, rel).is_file():
+                raise FileNotFoundError(
+                    f"dispatch.{field}[{i}]: file not found: {resolve(here, rel)}"
+                )
+    decks = DeckSpec(
+        templates=[resolve(here, t) for t in d.templates],
+        copies=[resolve(here, c) for c in d.copy_files],
+        links=[resolve(here, c) for c in d.link_files],
+        constants=dict(d.constants),
+        formats=dict(d.formats),
+    )
+    params = {p.name: _prior_midpoint(p) for p in config.parameters}
+    check_templates(decks, params, template_root=Path(base_dir))
+    exe = d.command[0]
+    if shutil.which(exe) is None and not resolve(here, exe).is_file():
+        raise FileNotFoundError(
+            f"dispatch.command[0]: {exe!r} is neither on PATH nor a file next to the config"
+        )

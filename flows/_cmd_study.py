@@ -1,0 +1,100 @@
+"""Commands that run studies: ``winnow run``, ``winnow schema``, ``winnow rerun``, ``winnow serve``."""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from ._cli_common import UsageError, fail, guarded
+
+__all__ = ["register"]
+
+
+def _load(config_path: Path):
+    from winnow.tasks.config import ConfigError, load_config
+
+    try:
+        return load_config(config_path)
+    except ConfigError as exc:
+        fail(str(exc))
+
+
+def _print_result(result) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    state = "up to date (nothing new to run)" if result.up_to_date else "done"
+    console.print(f"[bold]{result.revision}[/bold] of {result.store}: {state}")
+    counts = ", ".join(f"{k}: {v}" for k, v in sorted(result.counts.items()))
+    console.print(f"runs: {counts}; reused: {result.reused}")
+    table = Table(title="Estimates (weighted over the chosen points)")
+    for col in ("quantity", "units", "mean", "sd", "quantiles", "error sources"):
+        table.add_column(col)
+    for name, e in result.estimates.items():
+        q = ", ".join(
+            f"{float(k):g}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}"
+            for k, v in e["quantiles"].items()
+        )
+        u = ", ".join(
+            f"{k} {v:.2g}" if isinstance(v, float) else f"{k} {v}"
+            for k, v in e["uncertainty"].items()
+        )
+        mean = e["mean"] if not isinstance(e["mean"], float) else f"{e['mean']:.4g}"
+        sd = e["sd"] if not isinstance(e["sd"], float) else f"{e['sd']:.4g}"
+        table.add_row(name, e["units"], str(mean), str(sd), q, u)
+    console.print(table)
+    console.print(f"report: {result.report}")
+    console.print(
+        "[dim]Caution: estimates feed engineering judgement; decisions on water supply or "
+        "safety need review under local regulations and by a licensed professional.[/dim]"
+    )
+
+
+def register(app: typer.Typer) -> None:
+    @app.command("schema")
+    def schema() -> None:
+        """Print the JSON Schema of a study config."""
+        from winnow.tasks.config import config_schema
+
+        json.dump(config_schema(), sys.stdout, indent=2)
+        sys.stdout.write("\n")
+
+    @app.command("run")
+    @guarded
+    def run(
+        config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
+        force: Annotated[
+            bool, typer.Option("--force", help="Replace an existing run store.")
+        ] = False,
+    ) -> None:
+        """Run a study end to end (or resume it): sample, thin, dispatch, collect."""
+        cfg, text = _load(config)
+        from winnow.tasks.stages import ConvergenceError, preflight
+
+        base = config.resolve().parent
+        preflight(cfg, base)  # bad input is reported here, before anything is written
+        from winnow.flows.study import study_flow
+
+        try:
+            result = study_flow(cfg, base_dir=str(base), config_text=text, force=force)
+        except ConvergenceError as exc:
+            print(f"winnow: {exc}", file=sys.stderr)
+            raise SystemExit(1) from None
+        _print_result(result)
+
+    @app.command("validate")
+    @guarded
+    def validate(config: Annotated[Path, typer.Argument(help="Study config (YAML).")]) -> None:
+        """Check a study config, its files, model and templates without running anything."""
+        cfg, _ = _load(config)
+        from winnow.tasks.stages import preflight
+
+        preflight(cfg, config.resolve().parent)
+        print(f"{config}: valid")
+
+    _ = UsageError  # re-exported name used by other command modules

@@ -1,0 +1,400 @@
+"""The study flow: sample -> thin -> dispatch -> collect, recorded in one HDF5 run store.
+
+The flow is the store's only writer. Each stage's output is committed in one step, so a
+killed flow, started again with the same config, resumes after the last committed stage;
+runs that finished are journalled in their run folders and are never repeated.
+
+Revisions: the first run of a config creates revision ``r0001``. Running again with the same
+config and input files resumes (or, when complete, reports that it is up to date). Running
+with changed inputs (new observations, an edited config) creates a new revision; costly runs
+whose deck hash and solver command match a success in any revision are reused.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from prefect import flow, get_run_logger
+from prefect.artifacts import (
+    create_markdown_artifact,
+    create_progress_artifact,
+    create_table_artifact,
+    update_progress_artifact,
+)
+from prefect.runtime import flow_run
+
+from winnow.tasks.config import StudyConfig, config_hash, resolve
+from winnow.tasks.prefect_tasks import (
+    collect_task,
+    prepare_runs_task,
+    sample_task,
+    thin_stage_task,
+)
+from winnow.tasks.records import RunOutcome
+
+__all__ = ["StudyResult", "study_flow", "study_inputs"]
+
+
+@dataclass
+class StudyResult:
+    """What a study flow run did: where it is recorded and how its runs ended."""
+
+    store: str
+    revision: str
+    counts: dict[str, int] = field(default_factory=dict)
+    reused: int = 0
+    estimates: dict[str, dict[str, Any]] = field(default_factory=dict)
+    report: str = ""
+    up_to_date: bool = False
+
+
+def _module_file(spec: str | None, search: Path) -> Path | None:
+    """Source file of a ``module:function`` spec, for hashing (None when not a plain file)."""
+    if not spec:
+        return None
+    import sys
+
+    module = spec.split(":", 1)[0]
+    added = str(search) not in sys.path
+    if added:
+        sys.path.insert(0, str(search))
+    try:
+        found = importlib.util.find_spec(module)
+    except (ImportError, ValueError):
+        return None
+    finally:
+        if added:
+            sys.path.remove(str(search))
+    origin = getattr(found, "origin", None)
+    return Path(origin) if origin and Path(origin).is_file() else None
+
+
+def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
+    """Input files whose content defines a revision: observations, templates, model sources."""
+    here = base_dir / "x"
+    files: dict[str, Path] = {}
+    s = config.sample
+    if s.observations is not None:
+        files["observations"] = resolve(here, s.observations.file)
+    if s.import_chain is not None:
+        files["chain"] = resolve(here, s.import_chain.file)
+    search = resolve(here, s.model.search_path) if s.model else base_dir
+    if s.model is not None:
+        src = _module_file(s.model.forward or s.model.log_density, search)
+        if src is not None:
+            files["model"] = src
+    for i, t in enumerate(config.dispatch.templates):
+        files[f"template{i}"] = resolve(here, t)
+    for i, c in enumerate(config.dispatch.copy_files):
+        files[f"copy{i}"] = resolve(here, c)
+    for q in config.collect.qoi:
+        src = _module_file(q.cheap_qoi, search)
+        if src is not None:
+            files[f"cheap_qoi.{q.name}"] = src
+    return files
+
+
+def _flow_run_name() -> str:
+    params = flow_run.parameters
+    cfg = params.get("config")
+    name = cfg.study.name if isinstance(cfg, StudyConfig) else cfg["study"]["name"]
+    return f"{name}-{time.strftime('%Y%m%d-%H%M%S')}"
+
+
+def _estimate_summary(est) -> dict[str, Any]:
+    def f(x):
+        return x.tolist() if hasattr(x, "tolist") else x
+
+    out = {
+        "mean": f(est.mean),
+        "sd": f(est.sd),
+        "units": est.units,
+        "quantiles": {str(k): f(v) for k, v in est.quantiles.items()},
+        "uncertainty": {k: f(v) for k, v in est.uncertainty.items()},
+        "n_used": est.n_used,
+        "n_missing": est.n_missing,
+    }
+    if est.control_variate:
+        out["control_variate"] = {k: f(v) for k, v in est.control_variate.items()}
+    return out
+
+
+@flow(
+    name="winnow-study",
+    flow_run_name=_flow_run_name,
+    validate_parameters=True,
+    description="Calibrate a cheap model, thin its posterior, run the costly solver on the "
+    "chosen points and collect weighted estimates, all recorded in one HDF5 run store.",
+)
+def study_flow(
+    config: StudyConfig,
+    base_dir: str = ".",
+    config_text: str | None = None,
+    force: bool = False,
+) -> StudyResult:
+    """Run (or resume) a whole study.
+
+    Parameters
+    ----------
+    config : StudyConfig
+        The validated study config (a plain dict is validated into one).
+    base_dir : str
+        Folder that relative paths in the config are relative to (the config file's folder).
+    config_text : str, optional
+        The config file's text, stored and hashed as given; a canonical YAML dump otherwise.
+    force : bool
+        Replace an existing run store instead of adding to it.
+    """
+    import yaml
+
+    from winnow.flows.dispatch import dispatch_flow
+    from winnow.tasks.dispatch import scan_run_folders
+    from winnow.tasks.store import RunStore
+
+    log = get_run_logger()
+    base = Path(base_dir).resolve()
+    here = base / "x"
+    if config_text is None:
+        config_text = yaml.safe_dump(config.model_dump(mode="json", by_alias=True), sort_keys=False)
+    store_path = resolve(here, config.store)
+    inputs = study_inputs(config, base)
+    missing = [f"{k}: {p}" for k, p in inputs.items() if not p.is_file()]
+    if missing:
+        raise FileNotFoundError("input file(s) not found: " + "; ".join(missing))
+
+    if force or not store_path.exists():
+        RunStore.create(
+            store_path, config.study.name, force=force, description=config.study.description
+        )
+
+    with RunStore.open_for_write(store_path) as store:
+        rev = _choose_revision(store, config_text, inputs)
+        if rev is None:
+            rev = store.new_revision(
+                config_text,
+                inputs=inputs,
+                flow_run_id=str(flow_run.id) if flow_run.id else None,
+            )
+            log.info("study %s: new revision %s", config.study.name, rev)
+        else:
+            log.info("study %s: resuming revision %s", config.study.name, rev)
+        done = store.stages_done(rev)
+
+        # ---- sample ------------------------------------------------------------------
+        if "chain" in done:
+            chain = store.read_chain(rev)
+        else:
+
+            def checkpoint(state: dict[str, Any]) -> None:
+                store.save_checkpoint(rev, "sample", state)
+
+            chain = sample_task(
+                config,
+                base,
+                checkpoint=checkpoint,
+                resume=store.load_checkpoint(rev, "sample"),
+            )
+            store.write_chain(rev, chain)
+            store.clear_checkpoint(rev, "sample")
+        _diagnostics_artifact(chain, config.study.name)
+
+        # ---- thin ----------------------------------------------------------------------
+        if "selection" in done:
+            selection = store.read_selection(rev)
+        else:
+            selection = thin_stage_task(config, chain)
+            store.write_selection(rev, selection)
+        _selection_artifact(chain, selection, config.study.name)
+
+        # ---- dispatch --------------------------------------------------------------------
+        specs = prepare_runs_task(config, base, chain, selection)
+        if "runs" in done and "results" in done:
+            _, stored = store.read_runs(rev)
+            outcomes = {o.run_id: o for o in stored}
+            up_to_date = True
+        else:
+            up_to_date = False
+            known = store.successful_runs_by_key()
+            journal = scan_run_folders(resolve(here, config.work_dir))
+            outcomes = _dispatch(dispatch_flow, config, specs, known, journal, log)
+            store.write_runs(rev, specs, [outcomes[s.run_id] for s in specs])
+
+        # ---- collect ----------------------------------------------------------------------
+        if "results" in done:
+            values, estimates = store.read_results(rev)
+        else:
+            values, estimates = collect_task(config, base, chain, selection, specs, outcomes)
+            store.write_results(rev, values, estimates)
+
+    counts: dict[str, int] = {}
+    for o in outcomes.values():
+        counts[o.state] = counts.get(o.state, 0) + 1
+    result = StudyResult(
+        store=str(store_path),
+        revision=rev,
+        counts=counts,
+        reused=sum(1 for o in outcomes.values() if o.reused_from),
+        estimates={e.name: _estimate_summary(e) for e in estimates},
+        up_to_date=up_to_date,
+    )
+    result.report = str(_report(store_path, rev))
+    _estimates_artifact(config, rev, estimates, result)
+    if counts.get("succeeded", 0) == 0:
+        raise RuntimeError(
+            f"study {config.study.name} {rev}: no run succeeded ({counts}); every outcome is "
+            f"recorded in {store_path} -- see `winnow status {store_path}`"
+        )
+    return result
+
+
+def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | None:
+    """The revision to resume (same config and inputs as the latest one), or None for new."""
+    from winnow.tasks.store import hash_file
+
+    revs = store.revisions()
+    if not revs:
+        return None
+    latest = revs[-1]
+    prov = store.read_provenance(latest)
+    if prov.get("config_sha256") != config_hash(config_text):
+        return None
+    stored_inputs = store.read_inputs(latest)
+    current = {k: hash_file(p) for k, p in inputs.items()}
+    return latest if stored_inputs == current else None
+
+
+def _dispatch(dispatch_flow, config, specs, known, journal, log) -> dict[str, RunOutcome]:
+    """Run the specs not already finished; returns an outcome for every spec."""
+    outcomes: dict[str, RunOutcome] = {}
+    todo = []
+    for s in specs:
+        j = journal.get(s.run_id)
+        if j is not None and j.key == s.key and j.state == "succeeded":
+            outcomes[s.run_id] = j  # finished before a crash: never run again
+        else:
+            todo.append(s)
+    total = len(specs)
+    progress_id = create_progress_artifact(
+        progress=100.0 * len(outcomes) / max(total, 1),
+        key=f"{_key(config.study.name)}-runs-progress",
+        description=f"Solver runs finished for study {config.study.name}",
+    )
+    finished = [len(outcomes)]
+
+    def on_outcome(o: RunOutcome) -> None:
+        finished[0] += 1
+        update_progress_artifact(progress_id, 100.0 * finished[0] / max(total, 1))
+
+    if todo:
+        d = config.dispatch
+        runner = d.runner if isinstance(d.runner, str) else d.runner.model_dump(exclude_none=True)
+        for o in dispatch_flow(
+            todo,
+            runner=runner,
+            concurrency=d.concurrency,
+            timeout=d.timeout,
+            retries=d.retries,
+            retry_delay=d.retry_delay,
+            env=dict(d.env),
+            outputs=list(d.outputs),
+            known_successes=known,
+            on_outcome=on_outcome,
+        ):
+            outcomes[o.run_id] = o
+    log.info(
+        "dispatch: %d runs, %d reused from the journal or the store",
+        total,
+        sum(1 for o in outcomes.values() if o.reused_from) + (total - len(todo)),
+    )
+    _outcomes_artifact(config.study.name, specs, outcomes)
+    return outcomes
+
+
+# --------------------------------------------------------------------------------------------
+# artifacts (keys: lowercase letters, digits and dashes, stable per study)
+# --------------------------------------------------------------------------------------------
+def _key(name: str) -> str:
+    out = "".join(c if c.isalnum() else "-" for c in name.lower())
+    return "-".join(p for p in out.split("-") if p) or "study"
+
+
+def _diagnostics_artifact(chain, study: str) -> None:
+    d = chain.diagnostics
+    if d is None:
+        return
+    rows = [
+        {
+            "parameter": n,
+            "R-hat": round(p.rhat, 4),
+            "bulk ESS": round(p.ess_bulk, 1),
+            "tail ESS": round(p.ess_tail, 1),
+            "mean": p.mean,
+            "sd": p.sd,
+            "MCSE of mean": p.mcse_mean,
+        }
+        for n, p in d.parameters.items()
+    ]
+    create_table_artifact(
+        rows,
+        key=f"{_key(study)}-chain-diagnostics",
+        description=f"Convergence of the chain ({d.n_chains} chains x {d.n_draws} draws, "
+        f"{'passed' if d.passed else 'FAILED'} the thresholds)",
+    )
+
+
+def _selection_artifact(chain, selection, study: str) -> None:
+    rows = []
+    for k in range(selection.m):
+        row = {"row": int(selection.indices[k]), "weight": float(selection.weights[k])}
+        row.update({n: float(v) for n, v in zip(chain.names, selection.points[k], strict=True)})
+        rows.append(row)
+    create_table_artifact(
+        rows,
+        key=f"{_key(study)}-chosen-points",
+        description=f"{selection.m} points chosen by {selection.method} "
+        f"({selection.weights_rule} weights); MMD {selection.mmd_exact:.4g} (exact kernel)",
+    )
+
+
+def _outcomes_artifact(study: str, specs, outcomes) -> None:
+    rows = [
+        {
+            "run": s.run_id,
+            "state": outcomes[s.run_id].state,
+            "attempts": len(outcomes[s.run_id].attempts),
+            "seconds": round(outcomes[s.run_id].seconds, 2),
+            "reused from": outcomes[s.run_id].reused_from,
+        }
+        for s in specs
+    ]
+    create_table_artifact(
+        rows, key=f"{_key(study)}-run-outcomes", description="How each solver run ended"
+    )
+
+
+def _estimates_artifact(config, rev, estimates, result: StudyResult) -> None:
+    from winnow.tasks.collect import estimates_markdown
+
+    create_markdown_artifact(
+        estimates_markdown(
+            estimates,
+            study=config.study.name,
+            revision=rev,
+            counts=result.counts,
+            reused=result.reused,
+        ),
+        key=f"{_key(config.study.name)}-estimates",
+        description=f"Estimates of study {config.study.name} {rev}",
+    )
+
+
+def _report(store_path: Path, rev: str) -> Path:
+    from winnow.tasks.collect import build_report
+    from winnow.tasks.store import load_report_data
+
+    out_dir = store_path.with_name(store_path.stem + "-report")
+    return build_report(load_report_data(store_path, rev), out_dir)
