@@ -14,11 +14,22 @@ from ._cli_common import UsageError, fail, guarded
 __all__ = ["register"]
 
 
+def _expand_blocks(data):
+    """Expand saved-block references; Prefect is imported only when a config has one."""
+    if isinstance(data, dict) and any(
+        isinstance(data.get(k), dict) and "block" in data[k] for k in ("dispatch", "store")
+    ):
+        from winnow.flows.blocks import expand_blocks
+
+        return expand_blocks(data)
+    return data
+
+
 def _load(config_path: Path):
     from winnow.tasks.config import ConfigError, load_config
 
     try:
-        return load_config(config_path)
+        return load_config(config_path, preprocess=_expand_blocks)
     except ConfigError as exc:
         fail(str(exc))
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import math
 import shlex
+from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -416,7 +417,7 @@ class DispatchSettings(_Model):
     )
     command: Annotated[list[str], Field(min_length=1)] = Field(
         description="Solver command as an argument list (never a shell string); placeholders "
-        "{deck} (first rendered deck) and {run_dir}."
+        "{deck} (first rendered deck), {run_dir} and {python} (the Python running winnow)."
     )
     env: dict[str, str] = Field(
         default_factory=dict, description="Extra environment variables for the solver."
@@ -586,13 +587,19 @@ def parse_config(data: Any, *, source: str = "<config>") -> StudyConfig:
         raise ConfigError(format_validation_error(exc, source)) from None
 
 
-def load_config(path: str | Path) -> tuple[StudyConfig, str]:
+def load_config(
+    path: str | Path, *, preprocess: Callable[[Any], Any] | None = None
+) -> tuple[StudyConfig, str]:
     """Read and validate a study config file.
 
     Parameters
     ----------
     path : str or Path
         YAML file.
+    preprocess : callable, optional
+        Applied to the parsed YAML before validation (the command line uses it to expand
+        references to saved Prefect blocks); a ``ValueError`` it raises becomes a
+        :class:`ConfigError`.
 
     Returns
     -------
@@ -617,6 +624,11 @@ def load_config(path: str | Path) -> tuple[StudyConfig, str]:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         raise ConfigError(f"{path}: not valid YAML: {exc}") from None
+    if preprocess is not None:
+        try:
+            data = preprocess(data)
+        except ValueError as exc:
+            raise ConfigError(str(exc)) from None
     return parse_config(data, source=str(path)), text
 
 

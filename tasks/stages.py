@@ -218,6 +218,17 @@ def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None =
 # --------------------------------------------------------------------------------------------
 # dispatch (deck rendering; running is the dispatch flow's job)
 # --------------------------------------------------------------------------------------------
+def solver_command(command: Sequence[str]) -> list[str]:
+    """The configured argv with ``{python}`` replaced by the interpreter running winnow.
+
+    Solvers written in Python then run in the same environment as winnow, whatever
+    ``python`` on PATH happens to be.
+    """
+    import sys
+
+    return [sys.executable if a == "{python}" else a for a in command]
+
+
 def prepare_runs(
     config: StudyConfig,
     base_dir: Path,
@@ -251,7 +262,7 @@ def prepare_runs(
                 weight=float(selection.weights[k]),
                 run_root=run_root,
                 decks=decks,
-                command=list(d.command),
+                command=solver_command(d.command),
                 template_root=base_dir,
             )
         )
@@ -428,7 +439,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
     )
     params = {p.name: _prior_midpoint(p) for p in config.parameters}
     check_templates(decks, params, template_root=Path(base_dir))
-    exe = d.command[0]
+    exe = solver_command(d.command)[0]
     if shutil.which(exe) is None and not resolve(here, exe).is_file():
         raise FileNotFoundError(
             f"dispatch.command[0]: {exe!r} is neither on PATH nor a file next to the config"

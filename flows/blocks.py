@@ -1,0 +1,160 @@
+"""Prefect blocks: saved solver settings and run-store locations that configs can name.
+
+Register them with ``prefect block register -m winnow.flows.blocks``. A study config may then
+name a saved block instead of repeating its settings::
+
+    dispatch: {block: cluster-fem-solver}
+    store: {block: team-store}
+
+:func:`expand_blocks` replaces such references with the saved values before the config is
+validated, so a block holds exactly what the config section would.
+"""
+
+from __future__ import annotations
+
+from typing import Any, ClassVar
+
+from prefect.blocks.core import Block
+from pydantic import Field
+
+__all__ = ["RunStoreLocation", "SolverSettings", "expand_blocks"]
+
+_DOCS = "https://pypi.org/project/winnow/"
+
+
+class SolverSettings(Block):
+    """Settings of a costly solver: templates, command, runner and limits.
+
+    Holds the same fields as the ``dispatch`` section of a study config.
+    """
+
+    _block_type_name: ClassVar[str] = "winnow solver"
+    _block_type_slug: ClassVar[str] = "winnow-solver"
+    _documentation_url: ClassVar[str] = _DOCS
+    _description: ClassVar[str] = (
+        "Input deck templates, solver command, runner and limits of a costly solver run by "
+        "winnow studies."
+    )
+    _code_example: ClassVar[str] = """
+    from winnow.flows.blocks import SolverSettings
+
+    solver = SolverSettings.load("BLOCK_NAME")
+    dispatch_section = solver.as_config()
+    """
+
+    templates: list[str] = Field(
+        description="Deck templates (Jinja2) rendered into every run folder; absolute paths "
+        "or paths relative to the study config."
+    )
+    command: list[str] = Field(
+        description="Solver command as an argument list with {deck}, {run_dir} and {python} "
+        "placeholders."
+    )
+    copy_files: list[str] = Field(
+        default_factory=list, description="Files copied unchanged into every run folder."
+    )
+    link_files: list[str] = Field(
+        default_factory=list, description="Files linked into every run folder."
+    )
+    constants: dict[str, Any] = Field(
+        default_factory=dict, description="User constants available in the templates."
+    )
+    env: dict[str, str] = Field(
+        default_factory=dict, description="Extra environment variables for the solver."
+    )
+    outputs: list[str] = Field(
+        default_factory=list, description="Output files a successful run must leave."
+    )
+    timeout: float = Field(3600.0, gt=0, description="Wall-time limit of one attempt, in s.")
+    retries: int = Field(0, ge=0, description="Extra attempts after a failed one.")
+    retry_delay: float = Field(0.0, ge=0, description="Pause before a retry, in s.")
+    concurrency: int = Field(2, ge=1, description="Runs at the same time.")
+    runner: Any = Field(
+        "local",
+        description="Where runs go: 'local', {dask: {address | local_cluster}} or "
+        "{batch: {submit, template, poll_seconds}}.",
+    )
+
+    def as_config(self) -> dict[str, Any]:
+        """The block as a ``dispatch`` config section (validated with the study config)."""
+        data = self.model_dump(
+            include={
+                "templates",
+                "command",
+                "env",
+                "outputs",
+                "timeout",
+                "retries",
+                "retry_delay",
+                "concurrency",
+                "runner",
+                "constants",
+            }
+        )
+        data["copy"] = list(self.copy_files)
+        data["link"] = list(self.link_files)
+        return data
+
+
+class RunStoreLocation(Block):
+    """Where a study's HDF5 run store and run folders live."""
+
+    _block_type_name: ClassVar[str] = "winnow run store"
+    _block_type_slug: ClassVar[str] = "winnow-run-store"
+    _documentation_url: ClassVar[str] = _DOCS
+    _description: ClassVar[str] = (
+        "Location of a winnow study's HDF5 run store and of its run folders."
+    )
+    _code_example: ClassVar[str] = """
+    from winnow.flows.blocks import RunStoreLocation
+
+    location = RunStoreLocation.load("BLOCK_NAME")
+    print(location.store, location.work_dir)
+    """
+
+    store: str = Field(description="Path of the HDF5 run store file.")
+    work_dir: str = Field(description="Folder holding one run folder per chosen point.")
+
+
+def expand_blocks(data: Any, *, source: str = "<config>") -> Any:
+    """Replace ``{block: NAME}`` references in a parsed config with the saved block values.
+
+    ``dispatch: {block: NAME}`` loads a :class:`SolverSettings` block; ``store: {block: NAME}``
+    loads a :class:`RunStoreLocation` block and sets both ``store`` and ``work_dir``.
+
+    Raises
+    ------
+    ValueError
+        A reference names no saved block, or is not a mapping with only ``block``.
+    """
+    if not isinstance(data, dict):
+        return data
+    out = dict(data)
+    d = out.get("dispatch")
+    if isinstance(d, dict) and "block" in d:
+        if set(d) != {"block"}:
+            raise ValueError(
+                f"{source}: dispatch: a block reference takes only 'block', got {sorted(d)}"
+            )
+        out["dispatch"] = _load(SolverSettings, d["block"], f"{source}: dispatch.block").as_config()
+    s = out.get("store")
+    if isinstance(s, dict):
+        if set(s) != {"block"}:
+            raise ValueError(
+                f"{source}: store: expected a path or {{block: NAME}}, got keys {sorted(s)}"
+            )
+        loc = _load(RunStoreLocation, s["block"], f"{source}: store.block")
+        out["store"] = loc.store
+        out.setdefault("work_dir", loc.work_dir)
+    return out
+
+
+def _load(cls: type[Block], name: Any, where: str) -> Any:
+    if not isinstance(name, str) or not name:
+        raise ValueError(f"{where}: expected a saved block name, got {name!r}")
+    try:
+        return cls.load(name)
+    except ValueError as exc:
+        raise ValueError(
+            f"{where}: no saved {cls.get_block_type_slug()} block named {name!r} ({exc})"
+        ) from None
