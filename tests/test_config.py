@@ -1,0 +1,210 @@
+"""Study config loading: valid files load, bad ones name the file and the field, exit 2.
+
+The expectations here are the project's own contract (documented in the README's config
+reference); there is no outside source for a config format of our own.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+from pathlib import Path
+
+import pytest
+import yaml
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from typer.testing import CliRunner
+
+from winnow.flows.cli import app
+from winnow.tasks.config import ConfigError, config_schema, load_config, parse_config
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "configs" / "aquifer_demo.yaml"
+
+
+def demo_data() -> dict:
+    return yaml.safe_load(DEMO.read_text())
+
+
+def test_demo_config_loads():
+    cfg, text = load_config(DEMO)
+    assert cfg.study.name == "aquifer-demo"
+    assert cfg.names == ("log10_T", "log10_S")
+    assert cfg.budget == 12
+    assert cfg.dispatch.runner == "local"
+    assert cfg.collect.qoi[0].reader == {
+        "json": {"file": "result.json", "key": "qoi.drawdown_spring"}
+    }
+    assert text == DEMO.read_text()
+
+
+def _mutated(path: tuple, value) -> dict:
+    data = demo_data()
+    node = data
+    for p in path[:-1]:
+        node = node[p]
+    if value is _DELETE:
+        del node[path[-1]]
+    else:
+        node[path[-1]] = value
+    return data
+
+
+_DELETE = object()
+
+BAD = [
+    # (where, value, field path expected in the message, words expected in the message)
+    (("bogus",), 1, "bogus", "Extra inputs are not permitted"),
+    (("thin", "colour"), "red", "thin.colour", "Extra inputs"),
+    (("budget",), "twelve", "budget", "valid integer"),
+    (("budget",), 0, "budget", "greater than 0"),
+    (("budget",), -3, "budget", "greater than 0"),
+    (("budget",), _DELETE, "budget", "Field required"),
+    (("store",), _DELETE, "store", "Field required"),
+    (("parameters", 0, "prior", "low"), 5.0, "parameters.0.prior", "low must be < high"),
+    (("parameters", 1, "prior"), {"dist": "normal", "mu": 0.0}, "parameters.1.prior", "sigma"),
+    (("thin", "kernel"), "cosine", "thin.kernel", "'gaussian', 'laplace'"),
+    (("thin", "method"), "best", "thin.method", "'greedy', 'swap', 'genetic'"),
+    (("thin", "features"), 0, "thin.features", "positive"),
+    (("dispatch", "command"), "python solver.py deck.txt", "dispatch.command", "list of arguments"),
+    (("dispatch", "runner"), {"dask": {}}, "dispatch.runner.dask", "exactly one of"),
+    (("dispatch", "runner"), {"cloud": 1}, "dispatch.runner", "expected 'local'"),
+    (("dispatch", "timeout"), -1, "dispatch.timeout", "greater than 0"),
+    (("collect", "quantiles"), [0.5, 1.5], "collect.quantiles", "in (0, 1)"),
+    (("collect", "qoi", 0, "reader"), {"xml": {}}, "collect.qoi.0.reader", "exactly one reader"),
+    (("sample", "model"), {"forward": "not a path"}, "sample.model.forward", "pattern"),
+]
+
+
+@pytest.mark.parametrize(("where", "value", "field", "words"), BAD)
+def test_bad_config_names_file_and_field(where, value, field, words):
+    with pytest.raises(ConfigError) as err:
+        parse_config(_mutated(where, value), source="study.yaml")
+    msg = str(err.value)
+    assert msg.startswith("study.yaml: ")
+    assert f": {field}" in msg, msg
+    assert words in msg, msg
+
+
+def test_duplicate_parameter_names_refused():
+    data = demo_data()
+    data["parameters"][1]["name"] = "log10_T"
+    with pytest.raises(ConfigError, match="repeated: \\['log10_T'\\]"):
+        parse_config(data, source="s.yaml")
+
+
+def test_not_yaml_and_missing_file(tmp_path):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("study: [unclosed\n")
+    with pytest.raises(ConfigError, match="bad.yaml: not valid YAML"):
+        load_config(bad)
+    with pytest.raises(ConfigError, match="config file not found"):
+        load_config(tmp_path / "nope.yaml")
+    top = tmp_path / "list.yaml"
+    top.write_text("- 1\n- 2\n")
+    with pytest.raises(ConfigError, match="expected a mapping"):
+        load_config(top)
+
+
+def _walk_properties(schema: dict, defs: dict, seen: set, out: list):
+    for name, prop in schema.get("properties", {}).items():
+        out.append((schema.get("title", "?"), name, prop))
+        for sub in [prop, *prop.get("anyOf", []), *prop.get("oneOf", []), prop.get("items", {})]:
+            ref = sub.get("$ref") if isinstance(sub, dict) else None
+            if ref and ref not in seen:
+                seen.add(ref)
+                _walk_properties(defs[ref.split("/")[-1]], defs, seen, out)
+
+
+def test_schema_describes_every_field():
+    schema = config_schema()
+    out: list = []
+    _walk_properties(schema, schema.get("$defs", {}), set(), out)
+    assert len(out) > 60  # every section is reached
+    undocumented = [f"{model}.{name}" for model, name, prop in out if not prop.get("description")]
+    assert undocumented == []
+
+
+def test_schema_command_prints_json():
+    result = CliRunner().invoke(app, ["schema"])
+    assert result.exit_code == 0
+    schema = json.loads(result.stdout)
+    assert schema["title"] == "StudyConfig"
+    assert "budget" in schema["required"]
+
+
+def test_run_with_bad_config_exits_2_and_writes_nothing(tmp_path):
+    data = demo_data()
+    data["budget"] = 0
+    data["store"] = str(tmp_path / "study.h5")
+    data["work_dir"] = str(tmp_path / "runs")
+    cfg = tmp_path / "study.yaml"
+    cfg.write_text(yaml.safe_dump(data))
+    before = sorted(os.listdir(tmp_path))
+    result = CliRunner().invoke(app, ["run", str(cfg)])
+    assert result.exit_code == 2
+    assert f"{cfg}: budget: Input should be greater than 0" in result.stderr
+    assert sorted(os.listdir(tmp_path)) == before
+
+
+# --------------------------------------------------------------------------------------------
+# property-based: any config either loads or raises ConfigError, never another exception
+# --------------------------------------------------------------------------------------------
+_scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-5, 10**6),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=12),
+)
+_values = st.recursive(
+    _scalars,
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=3), st.dictionaries(st.text(max_size=8), inner, max_size=3)
+    ),
+    max_leaves=6,
+)
+
+
+def _paths(node, prefix=()):
+    yield prefix
+    if isinstance(node, dict):
+        for k, v in node.items():
+            yield from _paths(v, (*prefix, k))
+    elif isinstance(node, list):
+        for i, v in enumerate(node):
+            yield from _paths(v, (*prefix, i))
+
+
+_ALL_PATHS = [p for p in _paths(demo_data()) if p]
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    edits=st.lists(
+        st.tuples(st.sampled_from(_ALL_PATHS), st.one_of(st.just(_DELETE), _values)),
+        min_size=1,
+        max_size=3,
+    )
+)
+def test_random_configs_load_or_raise_config_error(edits):
+    data = demo_data()
+    for path, value in edits:
+        node = data
+        try:
+            for p in path[:-1]:
+                node = node[p]
+            if value is _DELETE:
+                del node[path[-1]]
+            else:
+                node[path[-1]] = copy.deepcopy(value)
+        except (KeyError, IndexError, TypeError):
+            continue  # an earlier edit removed or replaced this path
+    try:
+        cfg = parse_config(data, source="random.yaml")
+    except ConfigError as exc:
+        assert str(exc).startswith("random.yaml")
+    else:
+        assert cfg.budget > 0 and len(cfg.parameters) >= 1
