@@ -14,22 +14,12 @@ from ._cli_common import UsageError, fail, guarded
 __all__ = ["register"]
 
 
-def _expand_blocks(data):
-    """Expand saved-block references; Prefect is imported only when a config has one."""
-    if isinstance(data, dict) and any(
-        isinstance(data.get(k), dict) and "block" in data[k] for k in ("dispatch", "store")
-    ):
-        from winnow.flows.blocks import expand_blocks
-
-        return expand_blocks(data)
-    return data
-
-
 def _load(config_path: Path):
-    from winnow.tasks.config import ConfigError, load_config
+    from winnow.flows.blocks import load_study
+    from winnow.tasks.config import ConfigError
 
     try:
-        return load_config(config_path, preprocess=_expand_blocks)
+        return load_study(config_path)
     except ConfigError as exc:
         fail(str(exc))
 
@@ -108,4 +98,50 @@ def register(app: typer.Typer) -> None:
         preflight(cfg, config.resolve().parent)
         print(f"{config}: valid")
 
-    _ = UsageError  # re-exported name used by other command modules
+    @app.command("serve")
+    @guarded
+    def serve(
+        config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
+        cron: Annotated[
+            str, typer.Option("--cron", help='Cron schedule, e.g. "0 6 * * *" (server time).')
+        ],
+        name: Annotated[
+            str | None, typer.Option("--name", help="Deployment name (default: the study name).")
+        ] = None,
+    ) -> None:
+        """Serve a study on a schedule; each run makes a new revision only when inputs changed."""
+        cfg, _ = _load(config)
+        from winnow.tasks.stages import preflight
+
+        preflight(cfg, config.resolve().parent)
+        _check_cron(cron)
+        from prefect.settings import PREFECT_API_URL
+
+        if not PREFECT_API_URL.value():
+            raise UsageError(
+                "winnow serve needs a running Prefect server (the temporary one does not run "
+                "schedules): start one with `prefect server start` and set PREFECT_API_URL, e.g. "
+                "`prefect config set PREFECT_API_URL=http://127.0.0.1:4200/api`"
+            )
+        from winnow.flows.schedule import scheduled_study
+
+        scheduled_study.serve(
+            name=name or f"{cfg.study.name}-schedule",
+            cron=cron,
+            parameters={"config_path": str(config.resolve())},
+            description=cfg.study.description or None,
+            tags=["winnow", cfg.study.name],
+        )
+
+
+def _check_cron(cron: str) -> None:
+    """Refuse a malformed cron string before anything is registered."""
+    from prefect.client.schemas.schedules import CronSchedule
+
+    try:
+        CronSchedule(cron=cron)
+    except ValueError:
+        raise UsageError(
+            f"--cron: not a valid cron schedule: {cron!r}; expected five fields "
+            "'minute hour day-of-month month day-of-week', e.g. '0 6 * * *'"
+        ) from None

@@ -12,12 +12,15 @@ validated, so a block holds exactly what the config section would.
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any, ClassVar
 
 from prefect.blocks.core import Block
 from pydantic import Field
 
-__all__ = ["RunStoreLocation", "SolverSettings", "expand_blocks"]
+from winnow.tasks.config import StudyConfig, load_config
+
+__all__ = ["RunStoreLocation", "SolverSettings", "expand_blocks", "load_study"]
 
 _DOCS = "https://pypi.org/project/winnow/"
 
@@ -147,6 +150,26 @@ def expand_blocks(data: Any, *, source: str = "<config>") -> Any:
         out["store"] = loc.store
         out.setdefault("work_dir", loc.work_dir)
     return out
+
+
+def _has_block_refs(data: Any) -> bool:
+    return isinstance(data, dict) and any(
+        isinstance(data.get(k), dict) and "block" in data[k] for k in ("dispatch", "store")
+    )
+
+
+def load_study(path: str | Path) -> tuple[StudyConfig, str]:
+    """Read and validate a study config, expanding references to saved blocks.
+
+    Raises
+    ------
+    winnow.tasks.config.ConfigError
+        Naming the file and the field (or the block) at fault.
+    """
+    return load_config(
+        path,
+        preprocess=lambda d: expand_blocks(d, source=str(path)) if _has_block_refs(d) else d,
+    )
 
 
 def _load(cls: type[Block], name: Any, where: str) -> Any:
