@@ -1,0 +1,659 @@
+"""Weighted estimates of a quantity of interest and the uncertainty of those estimates.
+
+The collect stage holds ``m`` costly-run values ``y_i`` of a QoI at the chosen points, with
+weights ``w_i`` (non-negative, summing to one) that make the weighted points stand in for the
+whole posterior chain. From them it reports the weighted posterior-predictive summaries (mean,
+sd, quantiles, exceedance probabilities) and four separately labelled sources of error of the
+mean:
+
+``thinning_gap``
+    Signed gap ``sum_i w_i c(x_i) - mean_chain c`` of a cheap prediction ``c`` between the
+    chosen weighted points and the whole chain: how far thinning alone moves a mean, measured
+    where it can be measured exactly.
+``control_variate_se``
+    Standard error of the multi-fidelity control-variate estimate
+    ``mean_chain c + sum_i w_i (y_i - c(x_i))`` (coefficient one, the "discrepancy" form).
+``bootstrap_se``
+    Resampling standard error of the weighted mean (bootstrap of (value, weight) pairs).
+``chain_mcse``
+    Monte Carlo error of the chain itself, ``sd / sqrt(ESS)``.
+
+References
+----------
+.. [1] Peherstorfer, B., Willcox, K. and Gunzburger, M. (2016). Optimal model management
+   for multifidelity Monte Carlo estimation. SIAM J. Sci. Comput. 38(5), A3163-A3194.
+.. [2] Hyndman, R. J. and Fan, Y. (1996). Sample quantiles in statistical packages.
+   The American Statistician 50(4), 361-365.
+.. [3] Kish, L. (1965). Survey Sampling. Wiley, New York.
+.. [4] Efron, B. (1979). Bootstrap methods: another look at the jackknife. Ann. Statist.
+   7(1), 1-26; Efron, B. and Tibshirani, R. J. (1993). An Introduction to the Bootstrap.
+   Chapman & Hall, ch. 6 and 9 (bootstrapping pairs).
+.. [5] Vehtari, A., Gelman, A., Simpson, D., Carpenter, B. and Buerkner, P.-C. (2021).
+   Rank-normalization, folding, and localization: an improved R-hat for assessing
+   convergence of MCMC. Bayesian Analysis 16(2), 667-718.
+.. [6] Geyer, C. J. (1992). Practical Markov chain Monte Carlo. Statistical Science 7(4),
+   473-483.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from winnow.tasks.records import QoIEstimate, QoIValue
+
+__all__ = [
+    "bootstrap_mean_se",
+    "chain_ess",
+    "estimate_qoi",
+    "kish_ess",
+    "weighted_mean_sd",
+    "weighted_quantile",
+]
+
+ResolveWeights = Callable[[np.ndarray], tuple[npt.ArrayLike, float, float]]
+
+UNCERTAINTY_LABELS: dict[str, str] = {
+    "thinning_gap": "Thinning gap, cheap model (weighted points minus whole chain)",
+    "control_variate_se": "Standard error of the multi-fidelity estimate",
+    "bootstrap_se": "Bootstrap standard error of the weighted mean",
+    "chain_mcse": "Monte Carlo error of the chain (sd / sqrt(ESS))",
+}
+
+
+# --------------------------------------------------------------------------------------------
+# validation helpers
+# --------------------------------------------------------------------------------------------
+def _validate_weights(weights: npt.ArrayLike, m: int, name: str = "weights") -> np.ndarray:
+    w = np.asarray(weights, dtype=np.float64)
+    if w.shape != (m,):
+        raise ValueError(f"{name}: expected shape ({m},), got {w.shape}")
+    if not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise ValueError(f"{name}: expected finite non-negative values, got min {np.min(w)!r}")
+    total = float(w.sum())
+    if total <= 0.0:
+        raise ValueError(f"{name}: expected a positive sum, got {total!r}")
+    return w / total
+
+
+def _validate_values(values: npt.ArrayLike, name: str = "values") -> np.ndarray:
+    y = np.asarray(values, dtype=np.float64)
+    if y.ndim < 1 or y.shape[0] == 0:
+        raise ValueError(f"{name}: expected shape (m, ...) with m >= 1, got {y.shape}")
+    if not np.all(np.isfinite(y)):
+        raise ValueError(f"{name}: expected finite values")
+    return y
+
+
+def _validate_probabilities(q: npt.ArrayLike, name: str) -> np.ndarray:
+    qa = np.asarray(q, dtype=np.float64)
+    if qa.ndim > 1 or not np.all((qa >= 0.0) & (qa <= 1.0)):
+        raise ValueError(f"{name}: expected probabilities in [0, 1], got {q!r}")
+    return qa
+
+
+# --------------------------------------------------------------------------------------------
+# weighted summaries
+# --------------------------------------------------------------------------------------------
+def kish_ess(weights: npt.ArrayLike) -> float:
+    """Kish's effective sample size ``(sum w)^2 / sum w^2`` of non-negative weights.
+
+    Equals ``m`` for ``m`` equal weights and 1 when one weight carries everything [3]_.
+    """
+    w = np.asarray(weights, dtype=np.float64)
+    if w.ndim != 1 or w.size == 0 or np.any(w < 0) or not np.all(np.isfinite(w)):
+        raise ValueError(
+            f"weights: expected a non-empty 1-D array of non-negative values, got shape {w.shape}"
+        )
+    s2 = float(np.sum(w * w))
+    if s2 == 0.0:
+        raise ValueError("weights: all zero")
+    return float(np.sum(w)) ** 2 / s2  # Kish (1965), eq. for n_eff of a weighted sample
+
+
+def weighted_mean_sd(
+    values: npt.ArrayLike, weights: npt.ArrayLike
+) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and standard deviation of the weighted empirical distribution.
+
+    Parameters
+    ----------
+    values : array_like, shape (m, ...)
+    weights : array_like, shape (m,)
+        Non-negative; normalised to sum to one.
+
+    Returns
+    -------
+    mean, sd : ndarray, shape (...)
+        ``mean = sum_i w_i y_i`` and ``sd = sqrt(sum_i w_i (y_i - mean)^2)`` (the moments of
+        the distribution putting mass ``w_i`` on ``y_i``; no small-sample correction, because
+        the weighted points stand for the chain, not for an i.i.d. sample).
+    """
+    y = _validate_values(values)
+    w = _validate_weights(weights, y.shape[0])
+    wb = w.reshape((-1,) + (1,) * (y.ndim - 1))
+    mean = np.sum(wb * y, axis=0)
+    var = np.sum(wb * (y - mean) ** 2, axis=0)
+    return mean, np.sqrt(np.maximum(var, 0.0))
+
+
+def weighted_quantile(
+    values: npt.ArrayLike, weights: npt.ArrayLike, q: npt.ArrayLike
+) -> np.ndarray:
+    """Weighted quantiles, the weighted form of Hyndman & Fan's definition 5 (Hazen).
+
+    Definition: drop zero weights, sort the values ``y_(1) <= ... <= y_(m)`` with their
+    normalised weights ``w_(k)``, give each value the plotting position at the midpoint of
+    its step of the weighted empirical CDF, ``p_k = sum_{j<=k} w_(j) - w_(k) / 2``, and
+    interpolate linearly between the points ``(p_k, y_(k))``; below ``p_1`` the quantile is
+    ``y_(1)`` and above ``p_m`` it is ``y_(m)``. With equal weights ``p_k = (k - 1/2) / m``,
+    which is definition 5 of [2]_ and ``numpy.quantile(..., method="hazen")``.
+
+    Parameters
+    ----------
+    values : array_like, shape (m, ...)
+        Each trailing component (e.g. each time of a vector QoI) is treated separately.
+    weights : array_like, shape (m,)
+        Non-negative, positive sum.
+    q : float or array_like, shape (p,)
+        Probabilities in [0, 1].
+
+    Returns
+    -------
+    ndarray, shape (...) for a scalar ``q`` or (p, ...) for an array ``q``.
+    """
+    y = _validate_values(values)
+    w = _validate_weights(weights, y.shape[0])
+    qa = _validate_probabilities(q, "q")
+    keep = w > 0
+    y, w = y[keep], w[keep]
+    flat = y.reshape(y.shape[0], -1)
+    order = np.argsort(flat, axis=0, kind="stable")
+    ys = np.take_along_axis(flat, order, axis=0)
+    ws = w[order]
+    positions = np.cumsum(ws, axis=0) - 0.5 * ws  # midpoint of each CDF step
+    qf = np.atleast_1d(qa)
+    out = np.empty((qf.size, flat.shape[1]))
+    for j in range(flat.shape[1]):
+        out[:, j] = np.interp(qf, positions[:, j], ys[:, j])  # clamps outside [p_1, p_m]
+    out = out.reshape((qf.size,) + y.shape[1:])
+    return out[0] if qa.ndim == 0 else out
+
+
+def _exceedance(y: np.ndarray, w: np.ndarray, threshold: float) -> np.ndarray:
+    wb = w.reshape((-1,) + (1,) * (y.ndim - 1))
+    return np.sum(wb * (y > threshold), axis=0)  # P(Q > t) under the weighted distribution
+
+
+# --------------------------------------------------------------------------------------------
+# chain effective sample size (Vehtari et al. 2021 split-chain estimator, Geyer truncation)
+# --------------------------------------------------------------------------------------------
+def _autocov(x: np.ndarray) -> np.ndarray:
+    """Biased autocovariance of each row of ``x`` (shape (c, n)) by FFT, lags 0..n-1."""
+    n = x.shape[1]
+    size = 1 << int(np.ceil(np.log2(2 * n)))  # zero padding >= 2n avoids circular wrap
+    xc = x - x.mean(axis=1, keepdims=True)
+    f = np.fft.rfft(xc, n=size, axis=1)
+    return np.fft.irfft(f * np.conjugate(f), n=size, axis=1)[:, :n] / n
+
+
+def _ess_chains(x: np.ndarray) -> float:
+    """ESS of the mean for draws ``x`` of shape (c, n), chains already split."""
+    c, n = x.shape
+    if np.ptp(x) < np.finfo(float).resolution:
+        return float(x.size)  # a constant has no Monte Carlo error
+    acov = _autocov(x)
+    w_var = np.mean(acov[:, 0]) * n / (n - 1.0)  # within-chain variance W
+    var_plus = w_var * (n - 1.0) / n  # Vehtari et al. (2021) eq. (3)
+    if c > 1:
+        var_plus += np.var(x.mean(axis=1), ddof=1)  # + B/n
+    rho = np.zeros(n)
+    rho[0] = 1.0
+    even, odd = 1.0, 1.0 - (w_var - np.mean(acov[:, 1])) / var_plus  # eq. (10)
+    rho[1] = odd
+    t = 1
+    while t < n - 3 and even + odd > 0.0:  # Geyer's initial positive sequence
+        even = 1.0 - (w_var - np.mean(acov[:, t + 1])) / var_plus
+        odd = 1.0 - (w_var - np.mean(acov[:, t + 2])) / var_plus
+        if even + odd >= 0.0:
+            rho[t + 1], rho[t + 2] = even, odd
+        t += 2
+    max_t = t - 2
+    if even > 0.0:
+        rho[max_t + 1] = even
+    t = 1
+    while t <= max_t - 2:  # Geyer's initial monotone sequence
+        if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t]:
+            rho[t + 1] = rho[t + 2] = 0.5 * (rho[t - 1] + rho[t])
+        t += 2
+    total = c * n
+    tau = -1.0 + 2.0 * np.sum(rho[: max_t + 1]) + np.sum(rho[max_t + 1 : max_t + 2])  # eq. (11)
+    tau = max(tau, 1.0 / np.log10(total))  # caps ESS at n log10(n) for antithetic chains
+    return float(total / tau)
+
+
+def chain_ess(x: npt.ArrayLike, chain_index: npt.ArrayLike | None = None) -> np.ndarray:
+    """Effective sample size of the mean of a chain quantity, per component.
+
+    Split-chain estimator of Vehtari et al. (2021) [5]_ (without rank normalisation) with
+    Geyer's initial monotone sequence [6]_: each chain is split in halves, the
+    autocorrelations are combined across chains and summed until pairs of lags turn
+    negative. Rows are taken in order within each chain; chains of unequal length are cut to
+    the shortest.
+
+    Parameters
+    ----------
+    x : array_like, shape (n, ...)
+    chain_index : array_like of int, shape (n,), optional
+        Chain of each row; all rows form one chain when omitted.
+
+    Returns
+    -------
+    ndarray, shape (...)
+    """
+    xa = np.asarray(x, dtype=np.float64)
+    if xa.ndim < 1 or xa.shape[0] < 4:
+        raise ValueError(f"x: expected at least 4 rows, got shape {xa.shape}")
+    flat = xa.reshape(xa.shape[0], -1)
+    if chain_index is None:
+        groups = [flat]
+    else:
+        ci = np.asarray(chain_index)
+        if ci.shape != (xa.shape[0],):
+            raise ValueError(f"chain_index: expected shape ({xa.shape[0]},), got {ci.shape}")
+        groups = [flat[ci == c] for c in np.unique(ci)]
+    n = min(g.shape[0] for g in groups)
+    half = n // 2
+    if half < 2:
+        raise ValueError(f"x: every chain needs at least 4 rows, shortest has {n}")
+    out = np.empty(flat.shape[1])
+    for j in range(flat.shape[1]):
+        parts = [g[:n, j] for g in groups]
+        split = np.stack([p[:half] for p in parts] + [p[n - half :] for p in parts])
+        out[j] = _ess_chains(split)
+    return out.reshape(xa.shape[1:])
+
+
+_chain_ess = chain_ess  # estimate_qoi has a keyword argument of the same name
+
+
+# --------------------------------------------------------------------------------------------
+# bootstrap
+# --------------------------------------------------------------------------------------------
+def bootstrap_mean_se(
+    values: npt.ArrayLike,
+    weights: npt.ArrayLike,
+    *,
+    n_boot: int = 1000,
+    rng: int | np.random.Generator | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Bootstrap standard error of the weighted mean, resampling (value, weight) pairs.
+
+    Method: draw ``m`` of the points with positive weight uniformly with replacement,
+    keeping each point's weight, and recompute the weighted mean
+    ``sum_j w_j y_j / sum_j w_j`` of the resample (the pairs bootstrap of a ratio estimator,
+    Efron & Tibshirani 1993 ch. 9 [4]_). A point carrying a large weight then moves the
+    resampled means a lot, so uneven weights widen the error as they should; its
+    linearised variance is ``sum_i w_i^2 (y_i - mean)^2``, i.e. ``sd^2 / m`` for equal
+    weights.
+
+    Returns
+    -------
+    se : ndarray, shape (...)
+        Standard deviation (ddof=1) of the ``n_boot`` resampled means.
+    low, high : ndarray, shape (...)
+        2.5 % and 97.5 % percentiles of the resampled means.
+    """
+    y = _validate_values(values)
+    w = _validate_weights(weights, y.shape[0])
+    if isinstance(n_boot, bool) or not isinstance(n_boot, int | np.integer) or n_boot < 2:
+        raise ValueError(f"n_boot: expected an int >= 2, got {n_boot!r}")
+    gen = np.random.default_rng(rng)
+    keep = w > 0
+    y, w = y[keep], w[keep]
+    m = y.shape[0]
+    flat = y.reshape(m, -1)
+    idx = gen.integers(0, m, size=(int(n_boot), m))
+    wb = w[idx]  # (B, m)
+    means = np.einsum("bm,bmk->bk", wb, flat[idx]) / wb.sum(axis=1, keepdims=True)
+    se = means.std(axis=0, ddof=1) if m > 1 else np.zeros(flat.shape[1])
+    low, high = np.percentile(means, [2.5, 97.5], axis=0)
+    shape = y.shape[1:]
+    return se.reshape(shape), low.reshape(shape), high.reshape(shape)
+
+
+# --------------------------------------------------------------------------------------------
+# the estimate
+# --------------------------------------------------------------------------------------------
+def _split_values(
+    values: Sequence[QoIValue] | npt.ArrayLike, m: int, name: str
+) -> tuple[np.ndarray, np.ndarray, dict[str, str], tuple[int, ...]]:
+    """Return (values of usable rows, their positions, reasons left out, value shape)."""
+    left_out: dict[str, str] = {}
+    if isinstance(values, Sequence) and values and isinstance(values[0], QoIValue):
+        if len(values) != m:
+            raise ValueError(
+                f"values: expected {m} QoIValue records (one per weight), got {len(values)}"
+            )
+        ok_pos, rows = [], []
+        for k, v in enumerate(values):
+            if not isinstance(v, QoIValue):
+                raise TypeError(f"values[{k}]: expected QoIValue, got {type(v).__name__}")
+            if v.name != name:
+                raise ValueError(f"values[{k}]: record is for QoI {v.name!r}, expected {name!r}")
+            arr = np.asarray(v.value, dtype=np.float64)
+            if v.status == "ok" and np.all(np.isfinite(arr)):
+                ok_pos.append(k)
+                rows.append(arr)
+            else:
+                status = v.status if v.status != "ok" else "nonfinite"
+                left_out[v.run_id] = f"{status}: {v.reason}" if v.reason else status
+        shapes = {r.shape for r in rows}
+        if len(shapes) > 1:
+            raise ValueError(
+                f"values: runs of {name!r} disagree on the QoI shape: {sorted(shapes)}"
+            )
+        shape = rows[0].shape if rows else np.shape(values[0].value)
+        y = np.stack(rows) if rows else np.empty((0,) + shape)
+        return y, np.asarray(ok_pos, dtype=np.int64), left_out, shape
+    arr = np.asarray(values, dtype=np.float64)
+    if arr.ndim < 1 or arr.shape[0] != m:
+        raise ValueError(f"values: expected shape ({m}, ...), got {arr.shape}")
+    finite = np.all(np.isfinite(arr.reshape(m, -1)), axis=1)
+    for k in np.flatnonzero(~finite):
+        left_out[f"row {k}"] = "nonfinite"
+    pos = np.flatnonzero(finite).astype(np.int64)
+    return arr[pos], pos, left_out, arr.shape[1:]
+
+
+def _nan_estimate(
+    name: str,
+    units: str,
+    shape: tuple[int, ...],
+    quantiles: np.ndarray,
+    thresholds: np.ndarray,
+    m: int,
+    left_out: dict[str, str],
+) -> QoIEstimate:
+    nan = np.full(shape, np.nan)
+    return QoIEstimate(
+        name=name,
+        units=units,
+        mean=nan,
+        sd=nan.copy(),
+        quantiles={float(q): nan.copy() for q in quantiles},
+        exceedance={float(t): nan.copy() for t in thresholds},
+        uncertainty={},
+        control_variate=None,
+        n_used=0,
+        n_missing=m,
+        details={"note": "no run gave a usable value; nothing to estimate", "left_out": left_out},
+    )
+
+
+def estimate_qoi(
+    values: Sequence[QoIValue] | npt.ArrayLike,
+    weights: npt.ArrayLike,
+    *,
+    name: str,
+    units: str = "",
+    quantiles: Sequence[float] = (0.05, 0.5, 0.95),
+    thresholds: Sequence[float] = (),
+    cheap_on_points: npt.ArrayLike | None = None,
+    cheap_on_chain: npt.ArrayLike | None = None,
+    chain_ess: float | npt.ArrayLike | None = None,
+    chain_weights: npt.ArrayLike | None = None,
+    chain_index: npt.ArrayLike | None = None,
+    resolve_weights: ResolveWeights | None = None,
+    bootstrap: int = 1000,
+    rng: int | np.random.Generator | None = None,
+) -> QoIEstimate:
+    """Weighted estimate of one QoI with its uncertainty broken down by source.
+
+    Parameters
+    ----------
+    values : list of QoIValue, length m, or array_like, shape (m, ...)
+        Costly-run values at the chosen points, in selection order. Records whose status is
+        not ``ok`` (or arrays rows with non-finite entries) are left out, never read as zero.
+    weights : array_like, shape (m,)
+        Selection weights (non-negative).
+    name, units : str
+        QoI name and units (copied into the estimate).
+    quantiles : sequence of float
+        Probabilities of the weighted quantiles (see :func:`weighted_quantile`).
+    thresholds : sequence of float
+        Exceedance probabilities ``P(Q > t)`` are reported for these (QoI units).
+    cheap_on_points : array_like, shape (m, ...), optional
+        Cheap prediction of the QoI at the chosen points (all m, in selection order).
+    cheap_on_chain : array_like, shape (n, ...), optional
+        Cheap prediction at every chain row. Together with ``cheap_on_points`` it enables
+        ``thinning_gap`` and the control-variate estimate.
+    chain_ess : float or array_like, optional
+        Effective sample size of the chain for the mean of the cheap prediction (or of the
+        QoI). When omitted and ``cheap_on_chain`` is given it is computed by
+        :func:`chain_ess` (Kish ESS of ``chain_weights`` for a weighted chain).
+    chain_weights : array_like, shape (n,), optional
+        Weights of the chain rows (uniform when omitted).
+    chain_index : array_like of int, shape (n,), optional
+        Chain of each row, for the ESS computation.
+    resolve_weights : callable, optional
+        ``resolve_weights(surviving_positions) -> (new_weights, mmd_before, mmd_after)``;
+        called when some runs are left out, to re-solve the weights of the survivors.
+        Without it the surviving weights are renormalised (said in ``details``).
+    bootstrap : int
+        Number of bootstrap resamples for ``bootstrap_se`` (0 switches it off).
+    rng : int or numpy.random.Generator, optional
+        Seed or generator of the bootstrap.
+
+    Returns
+    -------
+    QoIEstimate
+        ``uncertainty`` holds, when computable: ``thinning_gap``, ``control_variate_se``,
+        ``bootstrap_se``, ``chain_mcse``; ``control_variate`` holds the multi-fidelity
+        estimate (discrepancy form, coefficient one) with its optimal-coefficient variant.
+        ``details`` says how each was obtained.
+
+    References
+    ----------
+    See the module docstring: Peherstorfer et al. (2016) for the control variate, Kish
+    (1965) for the effective sample size of the weights, Efron & Tibshirani (1993) for the
+    bootstrap and Vehtari et al. (2021) for the chain ESS.
+    """
+    if not isinstance(name, str) or not name:
+        raise ValueError(f"name: expected a non-empty str, got {name!r}")
+    w_all = np.asarray(weights, dtype=np.float64)
+    if w_all.ndim != 1 or w_all.size == 0:
+        raise ValueError(f"weights: expected shape (m,) with m >= 1, got {w_all.shape}")
+    m = w_all.size
+    w_all = _validate_weights(w_all, m)
+    qs = _validate_probabilities(list(quantiles), "quantiles")
+    th = np.asarray(list(thresholds), dtype=np.float64)
+    if th.ndim != 1 or not np.all(np.isfinite(th)):
+        raise ValueError(f"thresholds: expected finite numbers, got {thresholds!r}")
+    if (
+        isinstance(bootstrap, bool)
+        or not isinstance(bootstrap, int)
+        or bootstrap < 0
+        or bootstrap == 1
+    ):
+        raise ValueError(f"bootstrap: expected 0 (off) or an int >= 2, got {bootstrap!r}")
+    if (cheap_on_points is None) != (cheap_on_chain is None):
+        raise ValueError("cheap_on_points and cheap_on_chain: give both or neither")
+    gen = np.random.default_rng(rng)
+
+    y, pos, left_out, shape = _split_values(values, m, name)
+    run_ids = (
+        [v.run_id for v in values]
+        if isinstance(values, Sequence) and values and isinstance(values[0], QoIValue)
+        else None
+    )
+    cp = cc = None
+    if cheap_on_points is not None:
+        cp = np.asarray(cheap_on_points, dtype=np.float64)
+        cc = np.asarray(cheap_on_chain, dtype=np.float64)
+        if cp.shape != (m,) + shape:
+            raise ValueError(f"cheap_on_points: expected shape {(m,) + shape}, got {cp.shape}")
+        if cc.ndim < 1 or cc.shape[1:] != shape or cc.shape[0] < 1:
+            raise ValueError(f"cheap_on_chain: expected shape (n,) + {shape}, got {cc.shape}")
+        if not (np.all(np.isfinite(cp)) and np.all(np.isfinite(cc))):
+            raise ValueError("cheap_on_points, cheap_on_chain: expected finite values")
+
+    details: dict[str, Any] = {
+        "quantile_definition": "weighted Hazen: linear interpolation between midpoints of the "
+        "weighted empirical CDF steps (Hyndman & Fan 1996 definition 5 for equal weights)",
+        "sd_definition": "sd of the weighted empirical distribution (no small-sample factor)",
+        "left_out": left_out,
+    }
+    if y.shape[0] == 0:
+        return _nan_estimate(name, units, shape, qs, th, m, left_out)
+
+    # -- weights of the survivors ------------------------------------------------------------
+    weights_resolved, mmd_growth = False, 0.0
+    if pos.size == m:
+        w = w_all
+        details["weights_rule"] = "selection weights"
+    elif resolve_weights is not None:
+        new_w, mmd_before, mmd_after = resolve_weights(pos.copy())
+        w = _validate_weights(new_w, pos.size, "resolve_weights result")
+        weights_resolved = True
+        mmd_growth = float(mmd_after) - float(mmd_before)
+        details["weights_rule"] = "re-solved for the surviving points"
+        details["mmd_before"] = float(mmd_before)
+        details["mmd_after"] = float(mmd_after)
+    else:
+        w = _validate_weights(w_all[pos], pos.size, "surviving weights")
+        details["weights_rule"] = (
+            "surviving selection weights renormalised to sum to one "
+            "(no re-solve available; the discrepancy growth is unknown)"
+        )
+    wb = w.reshape((-1,) + (1,) * len(shape))
+    ess_points = kish_ess(w)
+    details["ess_points"] = ess_points
+    details["positions_used"] = pos
+    details["weights_used"] = w
+    if run_ids is not None:
+        details["run_ids_used"] = [run_ids[k] for k in pos]
+
+    mean, sd = weighted_mean_sd(y, w)
+    qv = weighted_quantile(y, w, qs) if qs.size else np.empty((0,) + shape)
+    quant = {float(q): qv[k] for k, q in enumerate(qs)}
+    exceed = {float(t): _exceedance(y, w, float(t)) for t in th}
+    uncertainty: dict[str, np.ndarray] = {}
+
+    # -- 3. resampling uncertainty -------------------------------------------------------------
+    if bootstrap:
+        se, low, high = bootstrap_mean_se(y, w, n_boot=bootstrap, rng=gen)
+        uncertainty["bootstrap_se"] = se
+        details["bootstrap"] = {
+            "method": "pairs bootstrap: points with positive weight drawn uniformly with "
+            "replacement, weighted mean of each resample (Efron & Tibshirani 1993)",
+            "resamples": int(bootstrap),
+            "interval_95": (low, high),
+        }
+
+    # -- 4. chain Monte Carlo error ------------------------------------------------------------
+    chain_sd = None
+    cw = None
+    if cc is not None:
+        n = cc.shape[0]
+        if chain_weights is not None:
+            cw = _validate_weights(chain_weights, n, "chain_weights")
+        else:
+            cw = np.full(n, 1.0 / n)
+        chain_mean, chain_sd = weighted_mean_sd(cc, cw)
+        details["chain_rows"] = int(n)
+    if chain_ess is not None:
+        ess_c = np.broadcast_to(np.asarray(chain_ess, dtype=np.float64), shape)
+        if not np.all(ess_c > 0):
+            raise ValueError(f"chain_ess: expected positive values, got {chain_ess!r}")
+        ess_basis = "given"
+    elif cc is not None and chain_weights is not None:
+        ess_c = np.full(shape, kish_ess(cw))
+        ess_basis = "Kish ESS of the chain weights"
+    elif cc is not None and cc.shape[0] >= 4:
+        ess_c = _chain_ess(cc, chain_index)
+        ess_basis = "split-chain ESS of the cheap prediction (Vehtari et al. 2021)"
+    else:
+        ess_c = None
+        ess_basis = ""
+    if ess_c is not None:
+        if chain_sd is not None:
+            uncertainty["chain_mcse"] = chain_sd / np.sqrt(ess_c)
+            details["chain_mcse"] = (
+                f"sd of the cheap prediction over the chain / sqrt(ESS); ESS {ess_basis}"
+            )
+        else:
+            uncertainty["chain_mcse"] = sd / np.sqrt(ess_c)
+            details["chain_mcse"] = (
+                "weighted sd of the QoI / sqrt(chain ESS) (no cheap "
+                f"prediction on the chain); ESS {ess_basis}"
+            )
+        details["chain_ess"] = np.asarray(ess_c, dtype=np.float64)
+
+    # -- 1 and 2. thinning gap and multi-fidelity control variate -----------------------------
+    control = None
+    if cp is not None:
+        c = cp[pos]
+        c_points = np.sum(wb * c, axis=0)
+        gap = c_points - chain_mean  # thinning error of the cheap model, measured exactly
+        uncertainty["thinning_gap"] = gap
+        d = y - c
+        d_mean, d_sd = weighted_mean_sd(d, w)
+        cv_mean = (
+            chain_mean + d_mean
+        )  # discrepancy form, coefficient 1 (control variate, cf. [1] sec. 2)
+        se_chain = uncertainty.get("chain_mcse", np.zeros(shape))
+        se_disc = d_sd / np.sqrt(ess_points)  # treats the points as ess_points i.i.d. draws
+        cv_se = np.sqrt(se_disc**2 + se_chain**2)
+        uncertainty["control_variate_se"] = cv_se
+        _, c_sd = weighted_mean_sd(c, w)
+        cov = np.sum(wb * (y - mean) * (c - c_points), axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rho = np.where((sd > 0) & (c_sd > 0), cov / (sd * c_sd), np.nan)
+            alpha = np.where(c_sd > 0, cov / c_sd**2, 0.0)  # = rho sigma_hi / sigma_lo
+        opt_mean = mean - alpha * gap  # mean + alpha (chain mean - points mean)
+        _, r_sd = weighted_mean_sd(y - alpha * c, w)
+        opt_se = np.sqrt(r_sd**2 / ess_points + (alpha * se_chain) ** 2)
+        control = {
+            "mean": cv_mean,
+            "se": cv_se,
+            "correlation": rho,
+            "form": "discrepancy (coefficient 1): chain mean of cheap + weighted mean of "
+            "(costly - cheap) at the points",
+            "cheap_chain_mean": chain_mean,
+            "cheap_points_mean": c_points,
+            "discrepancy_mean": d_mean,
+            "discrepancy_sd": d_sd,
+            "se_discrepancy": se_disc,
+            "se_chain": se_chain,
+            "ess_points": ess_points,
+            "optimal": {
+                "alpha": alpha,
+                "mean": opt_mean,
+                "se": opt_se,
+                "form": "optimal coefficient alpha = rho sigma_costly / sigma_cheap, "
+                "estimated from the same points",
+            },
+        }
+        details["control_variate_se"] = (
+            "sqrt(sd_w(costly - cheap)^2 / ESS_Kish(weights) + "
+            "chain_mcse^2); points treated as ESS_Kish i.i.d. draws"
+        )
+    return QoIEstimate(
+        name=name,
+        units=units,
+        mean=mean,
+        sd=sd,
+        quantiles=quant,
+        exceedance=exceed,
+        uncertainty=uncertainty,
+        control_variate=control,
+        n_used=int(pos.size),
+        n_missing=int(m - pos.size),
+        weights_resolved=weights_resolved,
+        mmd_growth=mmd_growth,
+        details=details,
+    )
