@@ -140,6 +140,11 @@ class RunStoreReader:
         with self._h5() as f:
             return sorted(self._rev(f, revision))
 
+    def stages_done(self, revision: str | int | None = None) -> set[str]:
+        """Stage outputs already stored in a revision: a subset of
+        ``{"chain", "selection", "runs", "results"}``."""
+        return set(self.sections(revision)) & set(S.DOWNSTREAM)
+
     # -- records ------------------------------------------------------------------------------
     def read_config_text(self, revision: str | int | None = None) -> str:
         with self._h5() as f:
