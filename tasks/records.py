@@ -65,6 +65,9 @@ class Diagnostics:
         True when every threshold held.
     messages : tuple of str
         One line per failed threshold, naming the parameter, the value and the threshold.
+    details : dict
+        Run facts worth keeping: sampler, model evaluations, evaluations where the model
+        gave non-finite output (taken as log density -inf), thinning, wall time.
     """
 
     parameters: dict[str, ParameterDiagnostics]
@@ -76,6 +79,7 @@ class Diagnostics:
     thresholds: dict[str, float]
     passed: bool
     messages: tuple[str, ...] = ()
+    details: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
