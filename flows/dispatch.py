@@ -1,0 +1,181 @@
+"""Prefect flow of the dispatch stage: one task run per point, on threads or a Dask cluster.
+
+:func:`dispatch_flow` runs the same core as :func:`winnow.tasks.dispatch.dispatch`
+(:func:`~winnow.tasks.dispatch.plan_dispatch` for reuse and resume, then
+:func:`~winnow.tasks.dispatch.execute_run` per point) through Prefect tasks, so each solver run
+is a task run named after its point. The ``runner`` config value picks the task runner:
+
+- ``"local"`` -> ``ThreadPoolTaskRunner(max_workers=concurrency)``;
+- ``{"dask": {"address": ...}}`` -> ``prefect_dask.DaskTaskRunner(address=...)``;
+- ``{"dask": {"local_cluster": {"n_workers": n}}}`` ->
+  ``DaskTaskRunner(cluster_kwargs={"n_workers": n, ...})``.
+
+A run that does not succeed ends its task run Failed (visible in the UI), but the flow waits
+for every task run, reads each final state and returns one outcome per spec: one failed run
+never fails the flow, and no failed state is left unresolved (shared/prefect-notes.md).
+The outcome of a failed task run is read back from the run folder's journal, which the run
+wrote before the task failed.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from prefect import flow, task, unmapped
+from prefect.futures import as_completed
+from prefect.logging import get_run_logger
+
+from winnow.tasks._process import failed_outcome
+from winnow.tasks.dispatch import (
+    DEFAULT_TAIL_BYTES,
+    RunOptions,
+    execute_run,
+    plan_dispatch,
+    read_outcome,
+)
+from winnow.tasks.records import RunOutcome, RunSpec
+
+__all__ = ["RunNotSucceeded", "dispatch_flow", "make_task_runner", "run_point"]
+
+_DASK_CLUSTER_DEFAULTS = {"threads_per_worker": 1, "dashboard_address": None}
+
+
+class RunNotSucceeded(RuntimeError):
+    """Raised by :func:`run_point` so that an unsuccessful run shows as a failed task run."""
+
+
+def make_task_runner(config_value: Any, *, concurrency: int):
+    """Prefect task runner for a ``runner:`` config value (same shapes as ``make_runner``).
+
+    Parameters
+    ----------
+    config_value : str, dict or None
+        ``"local"``, ``{"dask": {"address": ...}}`` or
+        ``{"dask": {"local_cluster": {"n_workers": ...}}}``.
+    concurrency : int
+        Threads of the local task runner.
+    """
+    from prefect.task_runners import ThreadPoolTaskRunner
+
+    from winnow.tasks._runners import _validate_concurrency
+
+    concurrency = _validate_concurrency(concurrency)
+    if config_value is None or config_value == "local" or config_value == {"local": {}}:
+        return ThreadPoolTaskRunner(max_workers=concurrency)
+    if isinstance(config_value, Mapping) and set(config_value) == {"dask"}:
+        value = config_value["dask"]
+        if isinstance(value, Mapping) and len(value) == 1:
+            ((kind, arg),) = value.items()
+            from prefect_dask import DaskTaskRunner
+
+            if kind == "address" and isinstance(arg, str) and arg:
+                return DaskTaskRunner(address=arg)
+            if kind == "local_cluster" and (arg is None or isinstance(arg, Mapping)):
+                kwargs = dict(_DASK_CLUSTER_DEFAULTS)
+                kwargs.update(arg or {})
+                return DaskTaskRunner(cluster_kwargs=kwargs)
+        raise ValueError(
+            "runner 'dask' needs exactly one of {'address': '<scheduler address>'} or "
+            f"{{'local_cluster': {{'n_workers': <int>}}}}, got {value!r}"
+        )
+    raise ValueError(
+        "the dispatch flow runs with runner 'local' or {'dask': {...}}; got "
+        f"{config_value!r} (a batch runner is used through winnow.tasks.dispatch.dispatch)"
+    )
+
+
+@task(task_run_name="run-{spec.run_id}")
+def run_point(spec: RunSpec, options: RunOptions) -> RunOutcome:
+    """Run the solver of one point (journalled in its run folder).
+
+    Returns the outcome when the run succeeded; raises :class:`RunNotSucceeded` otherwise, so
+    the task run shows Failed with the reason.
+    """
+    outcome = execute_run(spec, options)
+    if outcome.state != "succeeded":
+        raise RunNotSucceeded(f"run {spec.run_id} {outcome.state}: {outcome.message}")
+    return outcome
+
+
+def _outcome_of_failed(spec: RunSpec, state: Any, since: float) -> RunOutcome:
+    """Outcome of a failed task run: the journal it wrote, else the state's message."""
+    journalled = read_outcome(spec.run_dir)
+    if (
+        journalled is not None
+        and journalled.key == spec.key
+        and journalled.attempts
+        and journalled.attempts[0].started >= since
+    ):
+        return journalled
+    return failed_outcome(spec, f"task run {state.name}: {state.message}")
+
+
+@flow(name="winnow-dispatch", validate_parameters=False)
+def dispatch_flow(
+    specs: Sequence[RunSpec],
+    runner: Any = "local",
+    concurrency: int = 4,
+    known_successes: Mapping[str, str] | None = None,
+    on_outcome: Callable[[RunOutcome], Any] | None = None,
+    timeout: float | None = None,
+    retries: int = 0,
+    retry_delay: float = 0.0,
+    env: Mapping[str, str] | None = None,
+    cwd: str | None = None,
+    outputs: Sequence[str] = (),
+    tail_bytes: int = DEFAULT_TAIL_BYTES,
+    check_output: Callable[[Path], str | None] | None = None,
+    kill_grace: float = 5.0,
+    resume: bool = True,
+) -> list[RunOutcome]:
+    """Run the solver for every spec as Prefect task runs; return one outcome per spec.
+
+    Parameters are those of :func:`winnow.tasks.dispatch.dispatch`; ``runner`` picks the
+    Prefect task runner (see :func:`make_task_runner`) and ``concurrency`` its thread count.
+
+    Returns
+    -------
+    list of RunOutcome
+        In the order of ``specs``, every spec accounted for.
+    """
+    logger = get_run_logger()
+    specs = list(specs)
+    options = RunOptions(
+        timeout=timeout,
+        retries=retries,
+        retry_delay=retry_delay,
+        env=env,
+        cwd=cwd,
+        outputs=tuple(outputs),
+        tail_bytes=tail_bytes,
+        check_output=check_output,
+        kill_grace=kill_grace,
+    )
+    task_runner = make_task_runner(runner, concurrency=concurrency)
+    done, todo = plan_dispatch(specs, known_successes=known_successes, resume=resume)
+    for spec in specs:
+        if spec.run_id in done and on_outcome is not None:
+            on_outcome(done[spec.run_id])
+    if done:
+        logger.info("%d of %d runs already succeeded; not run again", len(done), len(specs))
+    since = time.time() - 1.0
+    if todo:
+        with task_runner as active:
+            futures = active.map(run_point, {"spec": todo, "options": unmapped(options)})
+            spec_of = {id(f): s for f, s in zip(futures, todo, strict=True)}
+            for n_done, future in enumerate(as_completed(list(futures)), start=1):
+                spec = spec_of[id(future)]
+                future.wait()
+                state = future.state
+                if state.is_completed():
+                    outcome = state.result()
+                else:
+                    outcome = _outcome_of_failed(spec, state, since)
+                done[spec.run_id] = outcome
+                logger.info("run %s %s (%d/%d)", spec.run_id, outcome.state, n_done, len(todo))
+                if on_outcome is not None:
+                    on_outcome(outcome)
+    return [done[s.run_id] for s in specs]

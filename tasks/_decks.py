@@ -1,0 +1,640 @@
+"""Input decks of the dispatch stage: sandboxed rendering, exact numbers, confined paths.
+
+Each chosen point becomes a run folder named by a stable id. The folder holds the decks
+rendered from the user's Jinja2 templates, files copied or linked unchanged (meshes, tables)
+and a small manifest ``winnow-manifest.json`` (parameters, provenance, deck hashes, key).
+
+Templates are rendered by Jinja2's sandboxed environment with ``StrictUndefined``: a template
+cannot reach Python internals through attribute tricks, and a misspelt name is an error that
+names the template, the line and the name instead of an empty string in the deck.
+
+References
+----------
+.. [1] Jinja2 documentation, "Sandbox": ``jinja2.sandbox.SandboxedEnvironment`` refuses access
+   to unsafe attributes (names starting with an underscore, internal attributes of functions,
+   methods, generators) and raises ``jinja2.exceptions.SecurityError``.
+   https://jinja.palletsprojects.com/en/stable/sandbox/
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import numbers
+import os
+import re
+import shutil
+import tempfile
+import traceback
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+from winnow.tasks.records import RunSpec
+
+__all__ = [
+    "MANIFEST_NAME",
+    "OUTCOME_NAME",
+    "DeckError",
+    "DeckSpec",
+    "format_number",
+    "point_run_id",
+    "render_run",
+    "run_key",
+]
+
+MANIFEST_NAME = "winnow-manifest.json"
+OUTCOME_NAME = "winnow-outcome.json"
+STDOUT_NAME = "winnow-stdout.txt"
+STDERR_NAME = "winnow-stderr.txt"
+#: File names the dispatch stage writes into a run folder; a deck may not use them.
+RESERVED_NAMES = frozenset({MANIFEST_NAME, OUTCOME_NAME, STDOUT_NAME, STDERR_NAME})
+#: Template variables set by winnow; parameters and constants may not use these names.
+RESERVED_VARIABLES = frozenset(
+    {"run_id", "point_id", "point_index", "chain_index", "weight", "run_dir", "params"}
+)
+MANIFEST_FORMAT = "winnow-run-manifest"
+MANIFEST_VERSION = 1
+
+_PLACEHOLDER = re.compile(r"\{(deck|run_dir|run_id)(?::([^{}]+))?\}")
+
+
+class DeckError(ValueError):
+    """A deck could not be rendered: the message names the template and what went wrong."""
+
+
+# --------------------------------------------------------------------------------------------
+# validation helpers
+# --------------------------------------------------------------------------------------------
+def _validate_params(params: Any) -> dict[str, float]:
+    if not isinstance(params, Mapping):
+        raise TypeError(f"params must be a mapping of name to number, got {type(params).__name__}")
+    out: dict[str, float] = {}
+    for name, value in params.items():
+        if not isinstance(name, str) or not name.isidentifier():
+            raise ValueError(f"parameter names must be identifiers, got {name!r}")
+        if isinstance(value, bool) or not isinstance(value, numbers.Real):
+            raise TypeError(
+                f"parameter {name!r} must be a real number, got {type(value).__name__} {value!r}"
+            )
+        value = float(value)
+        if not math.isfinite(value):
+            raise ValueError(f"parameter {name!r} must be a finite number, got {value!r}")
+        out[name] = value
+    if not out:
+        raise ValueError("params must hold at least one parameter, got an empty mapping")
+    return out
+
+
+def _validate_relative(path: str, *, what: str) -> PurePosixPath:
+    """Return ``path`` as a clean relative path, refusing absolute paths and ``..``."""
+    text = os.fspath(path)
+    pure = PurePosixPath(text.replace("\\", "/"))
+    if pure.is_absolute() or re.match(r"^[A-Za-z]:", text):
+        raise DeckError(f"{what}: path {text!r} is absolute; it must stay inside the run folder")
+    if any(part == ".." for part in pure.parts):
+        raise DeckError(f"{what}: path {text!r} contains '..'; it must stay inside the run folder")
+    parts = [p for p in pure.parts if p not in ("", ".")]
+    if not parts:
+        raise DeckError(f"{what}: path {text!r} names no file")
+    clean = PurePosixPath(*parts)
+    if len(parts) == 1 and clean.name in RESERVED_NAMES:
+        raise DeckError(f"{what}: path {text!r} is reserved for winnow's own files")
+    return clean
+
+
+def _confined(run_dir: Path, rel: PurePosixPath, *, what: str) -> Path:
+    """Join ``rel`` to ``run_dir`` and check that no link on the way leads out of it."""
+    root = run_dir.resolve()
+    target = root.joinpath(*rel.parts)
+    # Resolve the parent: a symlinked folder inside the run folder must not carry the file out.
+    parent = target.parent.resolve()
+    if parent != root and root not in parent.parents:
+        raise DeckError(f"{what}: path {str(rel)!r} leads out of the run folder {root}")
+    if target.is_symlink():
+        raise DeckError(f"{what}: path {str(rel)!r} is already a link in the run folder")
+    return target
+
+
+def _validate_command(command: Any) -> tuple[str, ...]:
+    if isinstance(command, str | bytes):
+        text = command.decode() if isinstance(command, bytes) else command
+        if any(ch.isspace() for ch in text.strip()) or not text.strip():
+            raise TypeError(
+                f"command must be an argv list (no shell is used), e.g. {text.split()!r}, "
+                f"not the single string {text!r}"
+            )
+        return (text,)
+    if not isinstance(command, Sequence) or not command:
+        raise TypeError(f"command must be a non-empty argv list of str, got {command!r}")
+    argv = tuple(command)
+    bad = [a for a in argv if not isinstance(a, str | os.PathLike)]
+    if bad:
+        raise TypeError(f"command items must be str, got {bad[0]!r} in {command!r}")
+    return tuple(os.fspath(a) for a in argv)
+
+
+# --------------------------------------------------------------------------------------------
+# numbers and ids
+# --------------------------------------------------------------------------------------------
+def format_number(value: float, spec: str | None = None) -> str:
+    """Write ``value`` as deck text.
+
+    Parameters
+    ----------
+    value : float
+        A finite number.
+    spec : str, optional
+        A format spec such as ``".6e"`` or ``"12.5f"``. ``None`` writes the shortest text that
+        reads back as exactly the same float (Python's ``repr(float)``, which is the shortest
+        round-trip representation).
+
+    Returns
+    -------
+    str
+    """
+    value = float(value)
+    if spec is None:
+        return repr(value)
+    try:
+        text = format(value, spec)
+    except (ValueError, TypeError) as exc:
+        raise ValueError(f"format spec {spec!r} cannot format a float: {exc}") from exc
+    try:
+        float(text)
+    except ValueError:
+        raise ValueError(
+            f"format spec {spec!r} writes {text!r}, which does not read back as a number"
+        ) from None
+    return text
+
+
+class _DeckNumber(float):
+    """A float that prints as its deck text but still does arithmetic in templates."""
+
+    text: str
+
+    def __new__(cls, value: float, text: str) -> _DeckNumber:
+        obj = super().__new__(cls, value)
+        obj.text = text
+        return obj
+
+    def __str__(self) -> str:
+        return self.text
+
+    def __repr__(self) -> str:
+        return self.text
+
+
+def _params_digest(params: Mapping[str, float]) -> str:
+    canon = json.dumps({k: repr(float(v)) for k, v in sorted(params.items())}, sort_keys=True)
+    return hashlib.sha256(canon.encode()).hexdigest()
+
+
+def point_run_id(point_index: int, params: Mapping[str, float]) -> str:
+    """Stable id of a point: ``"p<index, 6 digits>-<8 hex of the parameter hash>"``.
+
+    The same point index and parameter values (exact floats) always give the same id, so a
+    rerun finds its own run folder again.
+    """
+    if isinstance(point_index, bool) or not isinstance(point_index, numbers.Integral):
+        raise TypeError(f"point_index must be an int, got {point_index!r}")
+    if point_index < 0:
+        raise ValueError(f"point_index must be >= 0, got {point_index}")
+    clean = _validate_params(params)
+    return f"p{int(point_index):06d}-{_params_digest(clean)[:8]}"
+
+
+def run_key(deck_hashes: Mapping[str, str], argv: Sequence[str], run_dir: Path | str) -> str:
+    """SHA-256 over the deck hashes and the command.
+
+    The run folder in ``argv`` is written as ``{run_dir}`` before hashing, so the key of a
+    point does not depend on where the study folder lives.
+    """
+    root = str(run_dir)
+    canon_argv = [a.replace(root, "{run_dir}") for a in argv]
+    payload = json.dumps(
+        {"decks": dict(sorted(deck_hashes.items())), "argv": canon_argv}, sort_keys=True
+    )
+    return hashlib.sha256(payload.encode()).hexdigest()
+
+
+def _sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+# --------------------------------------------------------------------------------------------
+# the deck specification
+# --------------------------------------------------------------------------------------------
+def _as_str_tuple(value: Any, name: str) -> tuple[str, ...]:
+    if value is None:
+        return ()
+    if isinstance(value, str | os.PathLike):
+        value = [value]
+    try:
+        items = tuple(os.fspath(v) for v in value)
+    except TypeError:
+        raise TypeError(f"DeckSpec.{name} must be a list of paths, got {value!r}") from None
+    return items
+
+
+@dataclass(frozen=True)
+class DeckSpec:
+    """What goes into each run folder.
+
+    Attributes
+    ----------
+    templates : sequence of str
+        Template files, relative to the template root. Each is rendered to the same relative
+        name in the run folder, without a trailing ``.j2``. The first one is ``{deck}`` in the
+        solver command.
+    copies : sequence of str
+        Files copied unchanged. A relative path keeps its relative name; an absolute path is
+        copied under its base name.
+    links : sequence of str
+        Files symbolically linked unchanged (large meshes, tables), named like ``copies``.
+        Linked files are not hashed: they are assumed not to change between runs.
+    constants : dict
+        Extra template variables shared by every run.
+    formats : dict of str to str
+        Format spec per parameter (e.g. ``".6e"``) for solvers that need a fixed width;
+        parameters without one are written as the shortest round-trip text.
+    """
+
+    templates: Sequence[str]
+    copies: Sequence[str] = ()
+    links: Sequence[str] = ()
+    constants: Mapping[str, Any] = field(default_factory=dict)
+    formats: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "templates", _as_str_tuple(self.templates, "templates"))
+        object.__setattr__(self, "copies", _as_str_tuple(self.copies, "copies"))
+        object.__setattr__(self, "links", _as_str_tuple(self.links, "links"))
+        if not self.templates:
+            raise ValueError("DeckSpec.templates must name at least one template file")
+        if not isinstance(self.constants, Mapping):
+            raise TypeError(f"DeckSpec.constants must be a mapping, got {self.constants!r}")
+        if not isinstance(self.formats, Mapping):
+            raise TypeError(f"DeckSpec.formats must be a mapping, got {self.formats!r}")
+        for name in self.constants:
+            if not isinstance(name, str) or not name.isidentifier():
+                raise ValueError(f"DeckSpec.constants names must be identifiers, got {name!r}")
+            if name in RESERVED_VARIABLES:
+                raise ValueError(
+                    f"DeckSpec.constants may not use the reserved name {name!r} "
+                    f"(reserved: {sorted(RESERVED_VARIABLES)})"
+                )
+        for name, spec in self.formats.items():
+            if not isinstance(spec, str):
+                raise TypeError(f"DeckSpec.formats[{name!r}] must be a str, got {spec!r}")
+            format_number(1.0, spec)  # raises on a spec that cannot write a number
+        object.__setattr__(self, "constants", dict(self.constants))
+        object.__setattr__(self, "formats", dict(self.formats))
+
+
+# --------------------------------------------------------------------------------------------
+# rendering
+# --------------------------------------------------------------------------------------------
+def _environment(template_root: Path):
+    from jinja2 import FileSystemLoader, StrictUndefined
+    from jinja2.sandbox import SandboxedEnvironment
+
+    return SandboxedEnvironment(
+        loader=FileSystemLoader(str(template_root)),
+        undefined=StrictUndefined,
+        keep_trailing_newline=True,
+        autoescape=False,
+    )
+
+
+def _template_line(exc: BaseException, template_root: Path) -> tuple[str, int | None]:
+    """Template file and line where a rendering error arose (Jinja2 rewrites the traceback)."""
+    root = str(template_root.resolve())
+    found: tuple[str, int | None] = ("", None)
+    for frame in traceback.extract_tb(exc.__traceback__):
+        fname = frame.filename or ""
+        if fname.startswith(root) or fname == "<template>":
+            found = (fname, frame.lineno)
+    return found
+
+
+def _render_one(env, name: str, context: dict[str, Any], template_root: Path) -> str:
+    from jinja2 import TemplateNotFound, TemplateSyntaxError
+    from jinja2.exceptions import SecurityError, UndefinedError
+
+    try:
+        template = env.get_template(name)
+    except TemplateSyntaxError as exc:
+        where = exc.filename or name
+        raise DeckError(
+            f"template {where!r}, line {exc.lineno}: syntax error: {exc.message}"
+        ) from exc
+    except TemplateNotFound as exc:
+        raise DeckError(
+            f"template {name!r} not found under the template root {template_root}"
+        ) from exc
+    try:
+        return template.render(context)
+    except SecurityError as exc:
+        fname, line = _template_line(exc, template_root)
+        raise DeckError(
+            f"template {fname or name!r}, line {line}: refused by the sandbox: {exc}"
+        ) from exc
+    except UndefinedError as exc:
+        fname, line = _template_line(exc, template_root)
+        raise DeckError(f"template {fname or name!r}, line {line}: {exc}") from exc
+    except TemplateNotFound as exc:
+        fname, line = _template_line(exc, template_root)
+        raise DeckError(
+            f"template {fname or name!r}, line {line}: included template {exc.name!r} not found"
+        ) from exc
+    except TemplateSyntaxError as exc:
+        raise DeckError(
+            f"template {exc.filename or name!r}, line {exc.lineno}: syntax error: {exc.message}"
+        ) from exc
+    except Exception as exc:  # noqa: BLE001 - any error inside user template code
+        fname, line = _template_line(exc, template_root)
+        raise DeckError(
+            f"template {fname or name!r}, line {line}: {type(exc).__name__}: {exc}"
+        ) from exc
+
+
+def _template_name(entry: str, template_root: Path) -> str:
+    path = Path(entry)
+    if path.is_absolute():
+        root = template_root.resolve()
+        try:
+            rel = path.resolve().relative_to(root)
+        except ValueError:
+            raise DeckError(
+                f"template {entry!r} is outside the template root {root}; "
+                "give templates relative to the template root"
+            ) from None
+        return rel.as_posix()
+    return str(_validate_relative(entry, what=f"template {entry!r}"))
+
+
+def _source_and_dest(entry: str, template_root: Path, what: str) -> tuple[Path, PurePosixPath]:
+    path = Path(entry)
+    if path.is_absolute():
+        source, dest = path, PurePosixPath(path.name)
+    else:
+        dest = _validate_relative(entry, what=f"{what} {entry!r}")
+        source = template_root / entry
+    if not source.exists():
+        raise FileNotFoundError(f"{what} {entry!r}: source file {source} does not exist")
+    return source, dest
+
+
+def _fill_argv(
+    argv: tuple[str, ...], run_dir: Path, run_id: str, decks: list[PurePosixPath]
+) -> tuple[str, ...]:
+    by_name = {str(d): d for d in decks}
+
+    def sub(match: re.Match[str]) -> str:
+        kind, arg = match.group(1), match.group(2)
+        if kind == "run_dir":
+            return str(run_dir)
+        if kind == "run_id":
+            return run_id
+        if arg is None:
+            return str(run_dir.joinpath(*decks[0].parts))
+        if arg not in by_name:
+            raise ValueError(
+                f"command placeholder {{deck:{arg}}} names no rendered deck; "
+                f"rendered decks: {sorted(by_name)}"
+            )
+        return str(run_dir.joinpath(*by_name[arg].parts))
+
+    return tuple(_PLACEHOLDER.sub(sub, a) for a in argv)
+
+
+def read_manifest(run_dir: Path) -> dict[str, Any] | None:
+    """The manifest of a run folder, or None when absent or unreadable."""
+    try:
+        with open(Path(run_dir) / MANIFEST_NAME, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
+
+
+def _read_outcome_state(run_dir: Path) -> tuple[str, str] | None:
+    try:
+        with open(run_dir / OUTCOME_NAME, encoding="utf-8") as fh:
+            data = json.load(fh)
+        return str(data["state"]), str(data["key"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def write_json_atomic(path: Path, data: Any) -> None:
+    """Write ``data`` as JSON next to ``path`` and move it into place (never half-written)."""
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(data, fh, indent=2, sort_keys=True)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def render_run(
+    params: Mapping[str, float],
+    *,
+    run_id: str | None = None,
+    point_index: int,
+    weight: float,
+    run_root: Path | str,
+    decks: DeckSpec,
+    command: Sequence[str],
+    template_root: Path | str,
+    provenance: Mapping[str, str] | None = None,
+) -> RunSpec:
+    """Render the run folder of one point and return its :class:`RunSpec`.
+
+    Everything is rendered and checked in memory first; nothing is written when a template,
+    a path or the command is bad. The folder is then assembled under a temporary name and
+    moved into place, so a run folder is either complete or absent.
+
+    An existing folder of the same id is handled as follows: with a journalled success under
+    the same key it is left untouched (resume); without a journalled success (half-written,
+    killed mid-run, failed) it is removed and rendered again; a journalled success under a
+    *different* key (the decks or the command changed) is an error, so no finished run is
+    ever overwritten.
+
+    Parameters
+    ----------
+    params : dict of str to float
+        Finite parameter values in the user's units.
+    run_id : str, optional
+        Folder name; default :func:`point_run_id` of ``point_index`` and ``params``.
+    point_index : int
+        Row index of the point in the chain.
+    weight : float
+        The point's weight in the selection.
+    run_root : path
+        Folder holding all run folders.
+    decks : DeckSpec
+    command : sequence of str
+        Solver argv with placeholders ``{deck}`` (first rendered deck), ``{deck:<name>}``
+        (rendered deck by relative name), ``{run_dir}`` and ``{run_id}``.
+    template_root : path
+        Folder the templates and relative copies/links are found in.
+    provenance : dict of str to str, optional
+        Ids of the study, chain, selection, ... recorded in the manifest.
+
+    Returns
+    -------
+    RunSpec
+    """
+    clean = _validate_params(params)
+    if isinstance(weight, bool) or not isinstance(weight, numbers.Real):
+        raise TypeError(f"weight must be a real number, got {weight!r}")
+    weight = float(weight)
+    if not math.isfinite(weight) or weight < 0:
+        raise ValueError(f"weight must be finite and >= 0, got {weight!r}")
+    if not isinstance(decks, DeckSpec):
+        raise TypeError(f"decks must be a DeckSpec, got {type(decks).__name__}")
+    argv_template = _validate_command(command)
+    rid = point_run_id(point_index, clean) if run_id is None else run_id
+    if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9._-]*", rid):
+        raise ValueError(f"run_id must be letters, digits, '.', '_' or '-', got {rid!r}")
+    unknown = sorted(set(decks.formats) - set(clean))
+    if unknown:
+        raise ValueError(
+            f"DeckSpec.formats names parameters {unknown} that are not in params {sorted(clean)}"
+        )
+    clash = sorted(set(clean) & (RESERVED_VARIABLES | set(decks.constants)))
+    if clash:
+        raise ValueError(
+            f"parameter names {clash} clash with constants or reserved template variables"
+        )
+    prov = {str(k): str(v) for k, v in (provenance or {}).items()}
+    template_root = Path(template_root)
+    if not template_root.is_dir():
+        raise FileNotFoundError(f"template_root {template_root} is not a folder")
+    run_root = Path(run_root).absolute()
+    run_dir = run_root / rid
+
+    # --- render everything in memory -----------------------------------------------------
+    numbers_ = {
+        name: _DeckNumber(v, format_number(v, decks.formats.get(name))) for name, v in clean.items()
+    }
+    context: dict[str, Any] = dict(decks.constants)
+    context.update(numbers_)
+    context.update(
+        run_id=rid,
+        point_id=rid,
+        point_index=int(point_index),
+        chain_index=int(point_index),
+        weight=_DeckNumber(weight, format_number(weight)),
+        run_dir=str(run_dir),
+        params=dict(numbers_),
+    )
+    env = _environment(template_root)
+    rendered: dict[PurePosixPath, bytes] = {}
+    for entry in decks.templates:
+        name = _template_name(entry, template_root)
+        out_name = name[:-3] if name.endswith(".j2") else name
+        dest = _validate_relative(out_name, what=f"template {entry!r}")
+        if dest in rendered:
+            raise DeckError(f"template {entry!r}: two templates render to the same path {dest}")
+        rendered[dest] = _render_one(env, name, context, template_root).encode("utf-8")
+    copies = [_source_and_dest(e, template_root, "copy") for e in decks.copies]
+    links = [_source_and_dest(e, template_root, "link") for e in decks.links]
+    seen = set(rendered)
+    for _, dest in copies + links:
+        if dest in seen:
+            raise DeckError(f"path {str(dest)!r} is produced twice (templates, copies, links)")
+        seen.add(dest)
+    for _, dest in links:
+        # Nothing may be written below a linked folder: it would land outside the run folder.
+        inside = sorted(str(p) for p in seen if dest in p.parents)
+        if inside:
+            raise DeckError(
+                f"link {str(dest)!r}: paths {inside} would be written through this link, "
+                "out of the run folder"
+            )
+
+    deck_hashes = {str(p): hashlib.sha256(b).hexdigest() for p, b in rendered.items()}
+    for source, dest in copies:
+        if source.is_dir():
+            raise DeckError(f"copy {str(dest)!r}: source {source} is a folder; link it instead")
+        deck_hashes[str(dest)] = _sha256_file(source)
+    argv = _fill_argv(argv_template, run_dir, rid, list(rendered))
+    key = run_key(deck_hashes, argv, run_dir)
+    spec = RunSpec(
+        run_id=rid,
+        point_index=int(point_index),
+        params=clean,
+        weight=weight,
+        run_dir=run_dir,
+        argv=argv,
+        deck_hashes=deck_hashes,
+        key=key,
+    )
+
+    # --- an existing folder ------------------------------------------------------------------
+    if run_dir.is_symlink():
+        raise DeckError(f"run folder {run_dir} is a symbolic link; refusing to write through it")
+    if run_dir.exists():
+        journal = _read_outcome_state(run_dir)
+        if journal is not None and journal[0] == "succeeded":
+            if journal[1] == key:
+                return spec
+            raise ValueError(
+                f"run folder {run_dir} holds a finished run under another key (the decks or "
+                "the command changed); use a new run root or move that folder away"
+            )
+
+    # --- assemble under a temporary name, then move into place -------------------------------
+    run_root.mkdir(parents=True, exist_ok=True)
+    tmp_dir = Path(tempfile.mkdtemp(prefix=f".{rid}.partial-", dir=run_root))
+    try:
+        for dest, data in rendered.items():
+            target = _confined(tmp_dir, dest, what=f"deck {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            target.write_bytes(data)
+        for source, dest in copies:
+            target = _confined(tmp_dir, dest, what=f"copy {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(source, target)
+        for source, dest in links:
+            target = _confined(tmp_dir, dest, what=f"link {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.symlink(source.resolve(), target)
+        manifest = {
+            "format": MANIFEST_FORMAT,
+            "version": MANIFEST_VERSION,
+            "run_id": rid,
+            "point_index": int(point_index),
+            "weight": repr(weight),
+            "params": {k: repr(v) for k, v in clean.items()},
+            "argv": list(argv),
+            "deck_hashes": deck_hashes,
+            "links": {str(d): str(s.resolve()) for s, d in links},
+            "key": key,
+            "provenance": prov,
+        }
+        write_json_atomic(tmp_dir / MANIFEST_NAME, manifest)
+        if run_dir.exists():
+            shutil.rmtree(run_dir)
+        os.replace(tmp_dir, run_dir)
+    except BaseException:
+        shutil.rmtree(tmp_dir, ignore_errors=True)
+        raise
+    return spec
