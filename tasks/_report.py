@@ -125,12 +125,12 @@ def _diagnostics_rows(data: ReportData) -> list[dict[str, Any]]:
         {
             "parameter": name,
             "units": units.get(name, ""),
-            "mean": p.mean,
-            "sd": p.sd,
-            "R-hat": p.rhat,
-            "bulk ESS": p.ess_bulk,
-            "tail ESS": p.ess_tail,
-            "MCSE of mean": p.mcse_mean,
+            "mean": _num(p.mean),
+            "sd": _num(p.sd),
+            "R-hat": _num(p.rhat),
+            "bulk ESS": _num(p.ess_bulk),
+            "tail ESS": _num(p.ess_tail),
+            "MCSE of mean": _num(p.mcse_mean),
         }
         for name, p in diag.parameters.items()
     ]
@@ -148,10 +148,10 @@ def _points_rows(data: ReportData) -> list[dict[str, Any]]:
         if any(run_ids):
             row["run id"] = run_ids[k]
         row["chain row"] = int(sel.indices[k])
-        row["weight"] = float(sel.weights[k])
+        row["weight"] = _num(sel.weights[k])
         for j, name in enumerate(data.chain_names):
             unit = data.chain_units[j] if j < len(data.chain_units) else ""
-            row[f"{name}{_u(unit)}"] = float(sel.points[k, j])
+            row[f"{name}{_u(unit)}"] = _num(sel.points[k, j])
         if any(run_ids):
             row["run state"] = state.get(run_ids[k], "no record")
         rows.append(row)

@@ -16,6 +16,7 @@ import numpy as np
 __all__ = ["matplotlib_available", "pair_plot_png", "qoi_plot_png"]
 
 _MAX_PAIR_PARAMETERS = 6
+_MAX_CLOUD_ROWS = 5000  # chain rows drawn in the pair plot
 _FONT = 10
 
 
@@ -43,6 +44,13 @@ def _png(fig: Any) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png")
     return buf.getvalue()
+
+
+def _near(thresholds: Sequence[float], values: np.ndarray) -> list[float]:
+    """Thresholds close enough to the values to draw without squashing the plot."""
+    lo, hi = float(np.min(values)), float(np.max(values))
+    span = max(hi - lo, abs(hi) * 1e-6, 1e-12)
+    return [float(t) for t in thresholds if lo - 0.5 * span <= t <= hi + 0.5 * span]
 
 
 def _label(name: str, units: str) -> str:
@@ -73,6 +81,9 @@ def pair_plot_png(
         return None
     points = np.asarray(points, dtype=float)
     weights = np.asarray(weights, dtype=float)
+    if chain_samples is not None and len(chain_samples) > _MAX_CLOUD_ROWS:
+        step = -(-len(chain_samples) // _MAX_CLOUD_ROWS)  # even stride: no randomness needed
+        chain_samples = np.asarray(chain_samples)[::step]
     d = min(points.shape[1], _MAX_PAIR_PARAMETERS)
     panel = 2.6 if d > 2 else 3.4
     fig = make((panel * d + 0.6, panel * d + 0.4))
@@ -220,7 +231,7 @@ def qoi_plot_png(
                     ls="--",
                     label="multi-fidelity estimate",
                 )
-            for t in thresholds:
+            for t in _near(thresholds, values):
                 ax.axvline(float(t), color="#e08214", lw=1.2, ls=":", label=f"threshold {t:g}")
             ax.set_xlabel(label, fontsize=_FONT)
             ax.tick_params(labelsize=_FONT - 1)
@@ -248,7 +259,7 @@ def qoi_plot_png(
         ax.plot(
             x, cv_mean, color="#1b7837", lw=1.6, ls="--", zorder=4, label="multi-fidelity estimate"
         )
-    for t in thresholds:
+    for t in _near(thresholds, values):
         ax.axhline(float(t), color="#e08214", lw=1.2, ls=":", label=f"threshold {t:g}")
     ax.set_xlabel(_label(ax_info.get("name", "index"), ax_info.get("units", "")), fontsize=_FONT)
     ax.set_ylabel(label, fontsize=_FONT)

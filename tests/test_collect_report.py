@@ -338,3 +338,22 @@ def test_report_command_writes_report(cli_app, tmp_path, monkeypatch):
     assert (tmp_path / "report" / "report.html").is_file()
     assert (tmp_path / "report" / "points.csv").is_file()
     assert "Caution" in res.output
+
+
+def test_tables_are_strict_json(data):
+    # Prefect table artifacts are JSON: no NaN, no numpy scalars.
+    import json
+
+    json.dumps(report_tables(data), allow_nan=False)
+
+
+def test_quantity_without_usable_run_still_renders(tmp_path):
+    d = make_data()
+    bad = [
+        QoIValue(f"p{k:03d}", "head", np.asarray(np.nan), "missing", "no file") for k in range(M)
+    ]
+    d.qoi_values = d.qoi_values + bad
+    d.estimates = d.estimates + [estimate_qoi(bad, d.selection.weights, name="head", units="m")]
+    text = build_report(d, tmp_path).read_text()
+    assert "head: no run gave a usable value (8 left out)." in text
+    assert report_tables(d)["estimates"][-1]["mean (m)"] is None
