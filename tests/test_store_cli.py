@@ -1,0 +1,264 @@
+"""``winnow check/trace/status/diff``: exit codes, JSON shapes and the lineage they show.
+
+Expected values are the records written by hand below; hashes are checked against
+``hashlib.sha256`` (Python standard library).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from winnow.flows.cli import app
+from winnow.tasks.records import (
+    Attempt,
+    Chain,
+    QoIEstimate,
+    QoIValue,
+    RunOutcome,
+    RunSpec,
+    Selection,
+)
+from winnow.tasks.store import RunStore, check, diff, status, trace
+
+runner = CliRunner()
+
+
+def _write_revision(w, obs_file: Path, config: str, shift: float, *, reuse: bool) -> str:
+    g = np.random.default_rng(int(shift * 10))
+    n = 30
+    chain = Chain(
+        g.normal(size=(n, 2)) + shift,
+        ("K", "S"),
+        ("m/s", "1"),
+        np.repeat([0, 1], n // 2).astype(np.int64),
+        np.tile(np.arange(n // 2), 2).astype(np.int64),
+        g.normal(size=n),
+        "sampled:metropolis",
+    )
+    rev = w.new_revision(
+        config,
+        inputs={"observations": obs_file},
+        observations={"t": np.array([0.0, 60.0]), "h": np.array([1.0, 1.5 + shift])},
+        flow_run_id=f"flow-{config}",
+    )
+    w.write_chain(rev, chain)
+    idx = np.array([4, 11, 20])
+    sel = Selection(
+        idx,
+        np.array([0.5, 0.3, 0.2]),
+        chain.samples[idx],
+        "greedy",
+        "simplex",
+        "gaussian",
+        0.8,
+        "rff",
+        256,
+        11,
+        1e-3,
+        2e-3,
+        n,
+    )
+    w.write_selection(rev, sel)
+    specs, outcomes, values = [], [], []
+    for k, (i, wt) in enumerate(zip(idx, sel.weights, strict=True)):
+        rid = f"p{i:06d}-{k:08x}"
+        key = hashlib.sha256(f"{i}".encode()).hexdigest()
+        specs.append(
+            RunSpec(
+                rid,
+                int(i),
+                {"K": float(chain.samples[i, 0])},
+                float(wt),
+                Path(f"/runs/{rid}"),
+                ("solver", "deck.in"),
+                {"deck.in": hashlib.sha256(rid.encode()).hexdigest()},
+                key,
+            )
+        )
+        if k == 2:
+            att = (Attempt(1, ("solver", "deck.in"), 100.0, 130.0, 3, False, "", "boom"),)
+            outcomes.append(
+                RunOutcome(rid, key, "failed", att, Path(f"/runs/{rid}"), message="exit status 3")
+            )
+            values.append(QoIValue(rid, "drawdown", np.array(np.nan), "run_failed", "failed"))
+        elif reuse:
+            outcomes.append(
+                RunOutcome(
+                    rid, key, "succeeded", (), Path(f"/runs/{rid}"), reused_from=f"r0001/{rid}"
+                )
+            )
+            values.append(QoIValue(rid, "drawdown", np.array(2.0 + k), "ok"))
+        else:
+            att = (Attempt(1, ("solver", "deck.in"), 1000.0 + k, 1010.5 + k, 0, False, "ok", ""),)
+            outcomes.append(
+                RunOutcome(rid, key, "succeeded", att, Path(f"/runs/{rid}"), {"out.csv": "e" * 64})
+            )
+            values.append(QoIValue(rid, "drawdown", np.array(2.0 + k), "ok"))
+    w.write_runs(rev, specs, outcomes)
+    est = QoIEstimate(
+        "drawdown",
+        "m",
+        np.array(2.0 + shift),
+        np.array(0.4),
+        {0.5: np.array(2.1)},
+        {3.0: np.array(0.1)},
+        {"bootstrap_se": np.array(0.05)},
+        None,
+        2,
+        1,
+    )
+    w.write_results(rev, values, [est])
+    return rev
+
+
+@pytest.fixture(scope="module")
+def two_revisions(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    d = tmp_path_factory.mktemp("cli")
+    p = d / "study.h5"
+    obs = d / "obs.csv"
+    obs.write_text("t,h\n0,1.0\n60,1.5\n")
+    RunStore.create(p, "cli study")
+    with RunStore.open_for_write(p) as w:
+        _write_revision(w, obs, "v: 1", 0.0, reuse=False)
+        obs.write_text("t,h\n0,1.0\n60,2.0\n")
+        _write_revision(w, obs, "v: 2", 0.5, reuse=True)
+    return p, obs
+
+
+def test_check_exit_codes(two_revisions: tuple[Path, Path], tmp_path: Path) -> None:
+    p, _ = two_revisions
+    res = runner.invoke(app, ["check", str(p)])
+    assert res.exit_code == 0, res.output
+    assert "intact (2 revision(s)" in res.stdout
+    damaged = tmp_path / "damaged.h5"
+    damaged.write_bytes(p.read_bytes())
+    with h5py.File(damaged, "r+") as f:
+        f["revisions/r0001/selection/weights"][0] = 0.9
+        f["revisions/r0002/results/values/value_data"][0] = 7.0
+    res = runner.invoke(app, ["check", str(damaged)])
+    assert res.exit_code == 1
+    lines = res.stdout.strip().splitlines()
+    assert len(lines) == len(check(damaged).problems) >= 2  # one line per problem
+    assert any("/revisions/r0001/selection/weights: data do not match" in x for x in lines)
+    assert any("/revisions/r0002/results/values/value_data" in x for x in lines)
+    missing = runner.invoke(app, ["check", str(tmp_path / "nope.h5")])
+    assert missing.exit_code == 2 and "does not exist" in missing.stderr
+    junk = tmp_path / "junk.h5"
+    junk.write_text("not hdf5")
+    assert runner.invoke(app, ["check", str(junk)]).exit_code == 2
+    newer = tmp_path / "newer.h5"
+    newer.write_bytes(p.read_bytes())
+    with h5py.File(newer, "r+") as f:
+        f.attrs["schema_version"] = 2
+    res = runner.invoke(app, ["check", str(newer)])
+    assert res.exit_code == 2 and "schema version 2" in res.stderr
+
+
+def test_status_json_shape(two_revisions: tuple[Path, Path]) -> None:
+    p, _ = two_revisions
+    res = runner.invoke(app, ["status", str(p), "--json", "--revision", "r0001"])
+    assert res.exit_code == 0, res.output
+    st = json.loads(res.stdout)
+    assert set(st) == {"counts", "runs"}
+    assert st["counts"] == {
+        "succeeded": 2,
+        "failed": 1,
+        "timed_out": 0,
+        "output_missing": 0,
+        "not_run": 0,
+    }
+    assert [set(r) for r in st["runs"]] == [{"id", "state", "attempts", "seconds"}] * 3
+    assert st["runs"][0] == {
+        "id": "p000004-00000000",
+        "state": "succeeded",
+        "attempts": 1,
+        "seconds": 10.5,
+    }
+    assert st["runs"][2]["state"] == "failed" and st["runs"][2]["seconds"] == 30.0
+    assert st == status(p, "r0001")
+    latest = json.loads(runner.invoke(app, ["status", str(p), "--json"]).stdout)
+    assert latest["runs"][0]["attempts"] == 0  # r0002 reused it
+    table = runner.invoke(app, ["status", str(p)])
+    assert table.exit_code == 0 and "p000011-00000001" in table.stdout
+    bad = runner.invoke(app, ["status", str(p), "--revision", "r0042"])
+    assert bad.exit_code == 2 and "r0042" in bad.stderr
+
+
+def test_trace_lineage_of_a_run(two_revisions: tuple[Path, Path]) -> None:
+    p, obs = two_revisions
+    res = runner.invoke(app, ["trace", str(p), "p000011-00000001", "-r", "1", "--json"])
+    assert res.exit_code == 0, res.output
+    t = json.loads(res.stdout)
+    assert t["revision"] == "r0001"
+    assert t["inputs"]["observations"]["path"] == str(obs.resolve())
+    # the first revision's observation file held the old bytes
+    assert t["observations"]["file_sha256"] == hashlib.sha256(b"t,h\n0,1.0\n60,1.5\n").hexdigest()
+    assert t["chain"]["row"] == 11 and t["chain"]["chain_index"] == 0
+    assert t["chain"]["draw_index"] == 11 and t["chain"]["values"]["K"]["units"] == "m/s"
+    assert t["selection"] == {
+        **t["selection"],
+        "selected": True,
+        "position": 1,
+        "weight": 0.3,
+        "method": "greedy",
+        "seed": 11,
+    }
+    assert t["run"]["decks"] == [
+        {
+            "path": "deck.in",
+            "sha256": hashlib.sha256(b"p000011-00000001").hexdigest(),
+            "file": "/runs/p000011-00000001/deck.in",
+        }
+    ]
+    assert t["attempts"][0]["argv"] == ["solver", "deck.in"]
+    assert t["attempts"][0]["exit_status"] == 0 and t["attempts"][0]["started"] == 1001.0
+    assert t["qoi"] == [
+        {"name": "drawdown", "value": 3.0, "units": "m", "status": "ok", "reason": ""}
+    ]
+    assert t["provenance"]["flow_run_id"] == "flow-v: 1"
+    assert t == json.loads(json.dumps(trace(p, "p000011-00000001", revision=1)))
+
+
+def test_trace_by_row_and_reused_origin(two_revisions: tuple[Path, Path]) -> None:
+    p, _ = two_revisions
+    t = trace(p, 4)  # latest revision, chain row 4 was chosen there too
+    assert t["revision"] == "r0002"
+    assert t["run"]["run_id"] == "p000004-00000000" and t["run"]["reused_from"] == (
+        "r0001/p000004-00000000"
+    )
+    assert t["origin"]["found"] and t["origin"]["attempts"][0]["ended"] == 1010.5
+    unchosen = trace(p, "5")
+    assert unchosen["selection"]["selected"] is False and unchosen["run"] is None
+    res = runner.invoke(app, ["trace", str(p), "p000020-00000002"])
+    assert res.exit_code == 0 and "exit status 3" in res.stdout and "[run_failed]" in res.stdout
+    assert runner.invoke(app, ["trace", str(p), "nosuchrun"]).exit_code == 2
+    assert runner.invoke(app, ["trace", str(p), "999"]).exit_code == 2
+
+
+def test_diff_between_revisions(two_revisions: tuple[Path, Path]) -> None:
+    p, _ = two_revisions
+    res = runner.invoke(app, ["diff", str(p), "r0001", "r0002", "--json"])
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.stdout)
+    assert d["revisions"] == ["r0001", "r0002"]
+    assert d["config"]["changed"] and "-v: 1" in d["config"]["diff"]
+    assert d["inputs"]["changed"] == ["observations"]
+    assert d["sections"]["observations"]["changed"] and d["sections"]["chain"]["changed"]
+    # same row indices, but the chain moved by 0.5: every point differs by value
+    assert d["selection"]["indices"] == [[4, 11, 20], [4, 11, 20]]
+    assert d["selection"]["points_kept"] == 0 and len(d["selection"]["points_added"]) == 3
+    assert d["estimates"]["drawdown"]["mean"] == [2.0, 2.5]
+    assert d["estimates"]["drawdown"]["change"] == pytest.approx(0.5)
+    assert d["runs"]["counts"][1]["succeeded"] == 2
+    same = diff(p, 2, "latest")
+    assert not same["config"]["changed"] and same["selection"]["points_kept"] == 3
+    table = runner.invoke(app, ["diff", str(p), "1", "2"])
+    assert table.exit_code == 0 and "drawdown" in table.stdout
+    assert runner.invoke(app, ["diff", str(p), "1", "r0003"]).exit_code == 2
