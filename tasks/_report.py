@@ -712,7 +712,7 @@ def _html(data: ReportData) -> str:
             body.append(_img(png, "chosen points over the posterior chain"))
             cap = (
                 "Grey: posterior chain rows; red: chosen points, marker area proportional "
-                "to weight."
+                "to weight (on the diagonal, line height grows with weight)."
             )
             if sel.points.shape[1] > 6:
                 cap += f" Only the first 6 of {sel.points.shape[1]} parameters are drawn."
