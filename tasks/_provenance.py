@@ -102,7 +102,13 @@ def _feed_array(h: Any, a: np.ndarray) -> None:
     _feed_str(h, dt.str if dt.names is None else repr(dt.descr))
     h.update(struct.pack("<Q", a.ndim))
     h.update(struct.pack(f"<{a.ndim}q", *a.shape))
-    h.update(np.ascontiguousarray(a, dtype=dt).tobytes())
+    _feed_bytes(h, np.ascontiguousarray(a, dtype=dt))
+
+
+def _feed_bytes(h: Any, a: np.ndarray) -> None:
+    """Feed a C-contiguous array's bytes without copying them (large chains)."""
+    if a.size:
+        h.update(a.reshape(-1).view(np.uint8))
 
 
 def _feed(h: Any, obj: Any) -> None:
@@ -217,7 +223,7 @@ def hash_dataset_content(data: Any) -> str:
     step = max(1, (8 * _BLOCK) // row_bytes)
     for start in range(0, shape[0], step):
         block = data[start : start + step]
-        h.update(np.ascontiguousarray(block, dtype=dt).tobytes())
+        _feed_bytes(h, np.ascontiguousarray(block, dtype=dt))
     return h.hexdigest()
 
 
