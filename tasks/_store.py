@@ -383,7 +383,10 @@ def commit(store: Path, apply: Callable[[h5py.File], None], *, new: bool = False
         if not new:
             shutil.copyfile(store, tmp)
         _hook("copied")
-        with h5py.File(tmp, "w" if new else "r+", libver=LIBVER) as f:
+        # a new file tracks its free space persistently, so that space freed by rewriting a
+        # section is reused by later commits instead of growing the file
+        kw = {"fs_strategy": "fsm", "fs_persist": True} if new else {}
+        with h5py.File(tmp, "w" if new else "r+", libver=LIBVER, **kw) as f:
             apply(f)
             f.flush()
             _hook("applied")
