@@ -576,6 +576,8 @@ def execute_run(spec: RunSpec, options: RunOptions) -> RunOutcome:
     This is the one per-run function every runner ships (threads, Dask workers, Prefect
     tasks). Errors of the machinery itself become a ``failed`` outcome with the reason.
     """
+    if not isinstance(spec, RunSpec):
+        raise TypeError(f"spec must be a RunSpec, got {type(spec).__name__}")
     try:
         return _run_with_options(spec, options)
     except (DeckError, OSError, ValueError, TypeError) as exc:

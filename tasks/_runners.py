@@ -238,7 +238,7 @@ class DaskRunner(Runner):
             first = [submit(s) for s in pending[:limit]]
             spec_of = {f.key: s for f, s in zip(first, pending[:limit], strict=True)}
             queue = pending[limit:]
-            done = dask_as_completed(first)
+            done = dask_as_completed(first, loop=client.loop)
             for fut in done:
                 spec = spec_of[fut.key]
                 try:
