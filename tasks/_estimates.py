@@ -191,48 +191,47 @@ def _exceedance(y: np.ndarray, w: np.ndarray, threshold: float) -> np.ndarray:
 # --------------------------------------------------------------------------------------------
 # chain effective sample size (Vehtari et al. 2021 split-chain estimator, Geyer truncation)
 # --------------------------------------------------------------------------------------------
-def _autocov(x: np.ndarray) -> np.ndarray:
-    """Biased autocovariance of each row of ``x`` (shape (c, n)) by FFT, lags 0..n-1."""
-    n = x.shape[1]
+def _ess_chains(x: np.ndarray) -> np.ndarray:
+    """ESS of the mean for draws ``x`` of shape (c, n, k), chains already split; shape (k,).
+
+    The loops of Geyer's initial positive and initial monotone sequences are written as
+    array operations (first non-positive pair sum, running minimum of the pair sums), with
+    the same result as the sequential form of Vehtari et al. (2021), appendix.
+    """
+    c, n, k = x.shape
+    total = c * n
+    xt = np.ascontiguousarray(np.moveaxis(x, 1, 2))  # (c, k, n): lags along the last axis
+    xc = xt - xt.mean(axis=2, keepdims=True)
     size = 1 << int(np.ceil(np.log2(2 * n)))  # zero padding >= 2n avoids circular wrap
-    xc = x - x.mean(axis=1, keepdims=True)
-    f = np.fft.rfft(xc, n=size, axis=1)
-    return np.fft.irfft(f * np.conjugate(f), n=size, axis=1)[:, :n] / n
-
-
-def _ess_chains(x: np.ndarray) -> float:
-    """ESS of the mean for draws ``x`` of shape (c, n), chains already split."""
-    c, n = x.shape
-    if np.ptp(x) < np.finfo(float).resolution:
-        return float(x.size)  # a constant has no Monte Carlo error
-    acov = _autocov(x)
-    w_var = np.mean(acov[:, 0]) * n / (n - 1.0)  # within-chain variance W
+    f = np.fft.rfft(xc, n=size, axis=2)
+    acov = np.fft.irfft(f * np.conjugate(f), n=size, axis=2)[:, :, :n] / n  # biased
+    mean_acov = acov.mean(axis=0)  # (k, n), averaged over chains
+    w_var = mean_acov[:, 0] * n / (n - 1.0)  # within-chain variance W, (k,)
     var_plus = w_var * (n - 1.0) / n  # Vehtari et al. (2021) eq. (3)
     if c > 1:
-        var_plus += np.var(x.mean(axis=1), ddof=1)  # + B/n
-    rho = np.zeros(n)
-    rho[0] = 1.0
-    even, odd = 1.0, 1.0 - (w_var - np.mean(acov[:, 1])) / var_plus  # eq. (10)
-    rho[1] = odd
-    t = 1
-    while t < n - 3 and even + odd > 0.0:  # Geyer's initial positive sequence
-        even = 1.0 - (w_var - np.mean(acov[:, t + 1])) / var_plus
-        odd = 1.0 - (w_var - np.mean(acov[:, t + 2])) / var_plus
-        if even + odd >= 0.0:
-            rho[t + 1], rho[t + 2] = even, odd
-        t += 2
-    max_t = t - 2
-    if even > 0.0:
-        rho[max_t + 1] = even
-    t = 1
-    while t <= max_t - 2:  # Geyer's initial monotone sequence
-        if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t]:
-            rho[t + 1] = rho[t + 2] = 0.5 * (rho[t - 1] + rho[t])
-        t += 2
-    total = c * n
-    tau = -1.0 + 2.0 * np.sum(rho[: max_t + 1]) + np.sum(rho[max_t + 1 : max_t + 2])  # eq. (11)
-    tau = max(tau, 1.0 / np.log10(total))  # caps ESS at n log10(n) for antithetic chains
-    return float(total / tau)
+        var_plus = var_plus + np.var(x.mean(axis=1), axis=0, ddof=1)  # + B/n
+    out = np.empty(k)
+    j_max = max((n - 2 + 1) // 2 - 1, 0)  # last pair the sequential loop may reach
+    for j in range(k):
+        if np.ptp(xt[:, j]) < np.finfo(float).resolution:
+            out[j] = float(total)  # a constant has no Monte Carlo error
+            continue
+        rho = 1.0 - (w_var[j] - mean_acov[j]) / var_plus[j]  # eq. (10)
+        rho[0] = 1.0
+        n_pairs = j_max + 1
+        pair = rho[0 : 2 * n_pairs : 2] + rho[1 : 2 * n_pairs + 1 : 2]  # P_0 .. P_jmax
+        stop = np.flatnonzero(pair[: j_max + 1] <= 0.0)
+        n_iter = int(min(j_max, stop[0])) if stop.size else j_max  # pairs computed after P_0
+        kept = np.minimum.accumulate(pair[:n_iter])  # initial monotone sequence
+        if n_iter == 0:
+            extra = 1.0
+        else:
+            even = rho[2 * n_iter]
+            extra = even if (even > 0.0 or pair[n_iter] >= 0.0) else 0.0
+        tau = -1.0 + 2.0 * float(np.sum(kept)) + extra  # eq. (11)
+        tau = max(tau, 1.0 / np.log10(total))  # caps ESS at n log10(n) for antithetic chains
+        out[j] = total / tau
+    return out
 
 
 def chain_ess(x: npt.ArrayLike, chain_index: npt.ArrayLike | None = None) -> np.ndarray:
@@ -269,12 +268,9 @@ def chain_ess(x: npt.ArrayLike, chain_index: npt.ArrayLike | None = None) -> np.
     half = n // 2
     if half < 2:
         raise ValueError(f"x: every chain needs at least 4 rows, shortest has {n}")
-    out = np.empty(flat.shape[1])
-    for j in range(flat.shape[1]):
-        parts = [g[:n, j] for g in groups]
-        split = np.stack([p[:half] for p in parts] + [p[n - half :] for p in parts])
-        out[j] = _ess_chains(split)
-    return out.reshape(xa.shape[1:])
+    parts = [g[:n] for g in groups]
+    split = np.stack([p[:half] for p in parts] + [p[n - half :] for p in parts])  # (2c, n/2, k)
+    return _ess_chains(split).reshape(xa.shape[1:])
 
 
 _chain_ess = chain_ess  # estimate_qoi has a keyword argument of the same name

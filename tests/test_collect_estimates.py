@@ -227,7 +227,9 @@ def _ar1(rng, n_chains, n, phi):
     return x
 
 
-@pytest.mark.parametrize(("n_chains", "n", "phi"), [(1, 1000, 0.6), (4, 501, 0.9), (3, 300, -0.3)])
+@pytest.mark.parametrize(
+    ("n_chains", "n", "phi"), [(1, 1000, 0.6), (4, 501, 0.9), (3, 300, -0.3), (2, 9, -0.9)]
+)
 def test_chain_ess_matches_arviz(n_chains, n, phi):
     # Oracle: arviz.ess(method="mean"), split-chain ESS of Vehtari et al. (2021).
     az = pytest.importorskip("arviz")
