@@ -10,6 +10,7 @@ sidecar lock file).
 from __future__ import annotations
 
 import base64
+import dataclasses
 import errno
 import fcntl
 import json
@@ -674,6 +675,124 @@ def stamp(group: h5py.Group, winnow_version: str) -> None:
     group.attrs["winnow_version"] = winnow_version
 
 
+# Fields of each record that the layout stores in their own datasets/attributes. Fields added
+# to a record later (with a default, as records.py asks) are kept in an ``extra_json``
+# attribute or column, so that a round trip stays exact without a layout change.
+KNOWN_FIELDS = {
+    "Chain": {
+        "samples",
+        "names",
+        "units",
+        "chain_index",
+        "draw_index",
+        "log_density",
+        "source",
+        "diagnostics",
+    },
+    "Diagnostics": {
+        "parameters",
+        "n_chains",
+        "n_draws",
+        "burn_in",
+        "burn_in_rule",
+        "acceptance",
+        "thresholds",
+        "passed",
+        "messages",
+        "details",
+    },
+    "ParameterDiagnostics": {
+        "rhat",
+        "ess_bulk",
+        "ess_tail",
+        "mcse_mean",
+        "mcse_q05",
+        "mcse_q95",
+        "mean",
+        "sd",
+    },
+    "Selection": {
+        "indices",
+        "weights",
+        "points",
+        "method",
+        "weights_rule",
+        "kernel",
+        "bandwidth",
+        "feature_map",
+        "n_features",
+        "seed",
+        "mmd_features",
+        "mmd_exact",
+        "mmd_exact_rows",
+        "report",
+        "population",
+    },
+    "RunSpec": {
+        "run_id",
+        "point_index",
+        "params",
+        "weight",
+        "run_dir",
+        "argv",
+        "deck_hashes",
+        "key",
+    },
+    "RunOutcome": {
+        "run_id",
+        "key",
+        "state",
+        "attempts",
+        "run_dir",
+        "output_hashes",
+        "message",
+        "reused_from",
+    },
+    "Attempt": {
+        "number",
+        "argv",
+        "started",
+        "ended",
+        "exit_status",
+        "timed_out",
+        "stdout_tail",
+        "stderr_tail",
+        "error",
+    },
+    "QoIValue": {"run_id", "name", "value", "status", "reason"},
+    "QoIEstimate": {
+        "name",
+        "units",
+        "mean",
+        "sd",
+        "quantiles",
+        "exceedance",
+        "uncertainty",
+        "control_variate",
+        "n_used",
+        "n_missing",
+        "weights_resolved",
+        "mmd_growth",
+        "details",
+    },
+}
+
+
+def extra_json(obj: Any) -> str:
+    """Tagged JSON of a record's fields that the layout does not store on their own."""
+    known = KNOWN_FIELDS[type(obj).__name__]
+    extra = {f.name: getattr(obj, f.name) for f in dataclasses.fields(obj) if f.name not in known}
+    return to_json(extra, f"{type(obj).__name__} extra fields")
+
+
+def build(cls: type, kwargs: dict[str, Any], extra: str | None) -> Any:
+    """``cls(**kwargs)`` plus the stored extra fields that ``cls`` still has."""
+    if extra:
+        names = {f.name for f in dataclasses.fields(cls)}
+        kwargs.update({k: v for k, v in from_json(extra).items() if k in names})
+    return cls(**kwargs)
+
+
 # ------------------------------------------------------------------------------------------
 # section: chain (+ diagnostics)
 # ------------------------------------------------------------------------------------------
@@ -720,6 +839,7 @@ def write_chain(rev: h5py.Group, chain: Chain, digest: str) -> None:
         n_parameters=d,
         has_log_density=chain.log_density is not None,
         sha256=digest,
+        extra_json=extra_json(chain),
     )
     put_array(
         g,
@@ -762,7 +882,9 @@ def write_diagnostics(parent: h5py.Group, diag: Diagnostics) -> None:
         burn_in_rule=diag.burn_in_rule,
         passed=bool(diag.passed),
         thresholds=to_json(diag.thresholds, "diagnostics.thresholds"),
+        details=to_json(getattr(diag, "details", {}), "diagnostics.details"),
         sha256=hash_object(diag),
+        extra_json=extra_json(diag),
     )
     names = list(diag.parameters)
     put_array(
@@ -776,6 +898,13 @@ def write_diagnostics(parent: h5py.Group, diag: Diagnostics) -> None:
         units, desc = _PD_DESC[fld]
         vals = np.array([getattr(diag.parameters[n], fld) for n in names], dtype=np.float64)
         put_array(g, fld, vals, units=units, description=desc)
+    put_array(
+        g,
+        "extra_json",
+        np.array([extra_json(diag.parameters[n]) for n in names], dtype=object),
+        units=TEXT,
+        description="fields of each row beyond the columns above (tagged JSON)",
+    )
     put_array(
         g,
         "acceptance",
@@ -795,11 +924,12 @@ def write_diagnostics(parent: h5py.Group, diag: Diagnostics) -> None:
 def read_diagnostics(g: h5py.Group) -> Diagnostics:
     names = get_texts(need(g, "parameter"))
     cols = {f: get_array(need(g, f)) for f in _PD_FIELDS}
+    extras = get_texts(g["extra_json"]) if "extra_json" in g else [""] * len(names)
     params = {
-        n: ParameterDiagnostics(**{f: float(cols[f][i]) for f in _PD_FIELDS})
+        n: build(ParameterDiagnostics, {f: float(cols[f][i]) for f in _PD_FIELDS}, extras[i])
         for i, n in enumerate(names)
     }
-    return Diagnostics(
+    kwargs = dict(
         parameters=params,
         n_chains=int(g.attrs["n_chains"]),
         n_draws=int(g.attrs["n_draws"]),
@@ -810,6 +940,9 @@ def read_diagnostics(g: h5py.Group) -> Diagnostics:
         passed=bool(g.attrs["passed"]),
         messages=tuple(get_texts(need(g, "messages"))),
     )
+    if "details" in g.attrs:
+        kwargs["details"] = attr_json(g, "details")
+    return build(Diagnostics, kwargs, attr_str(g, "extra_json", ""))
 
 
 def read_chain(rev: h5py.Group) -> Chain:
@@ -817,7 +950,7 @@ def read_chain(rev: h5py.Group) -> Chain:
     s = need(g, "samples")
     names = tuple(str(x) for x in s.attrs["names"])
     units = tuple(str(x) for x in s.attrs["units"])
-    return Chain(
+    kwargs = dict(
         samples=get_array(s),
         names=names,
         units=units,
@@ -827,6 +960,7 @@ def read_chain(rev: h5py.Group) -> Chain:
         source=attr_str(g, "source"),
         diagnostics=read_diagnostics(g["diagnostics"]) if "diagnostics" in g else None,
     )
+    return build(Chain, kwargs, attr_str(g, "extra_json", ""))
 
 
 # ------------------------------------------------------------------------------------------
@@ -874,6 +1008,7 @@ def write_selection(rev: h5py.Group, sel: Selection, digest: str) -> None:
         mmd_exact_rows=int(sel.mmd_exact_rows),
         report=to_json(sel.report, "selection.report"),
         sha256=digest,
+        extra_json=extra_json(sel),
     )
     # exact round trip of scalar settings given as numpy scalars or Python numbers
     g.attrs["settings_json"] = to_json(
@@ -941,7 +1076,7 @@ def read_selection(rev: h5py.Group) -> Selection:
             (get_array(pop[f"p{i:04d}"]), attr_json(pop[f"p{i:04d}"], "mmd"))
             for i in range(int(pop.attrs["count"]))
         ]
-    return Selection(
+    kwargs = dict(
         indices=get_array(need(g, "indices")),
         weights=get_array(need(g, "weights")),
         points=get_array(need(g, "points")),
@@ -958,6 +1093,7 @@ def read_selection(rev: h5py.Group) -> Selection:
         report=attr_json(g, "report"),
         population=population,
     )
+    return build(Selection, kwargs, attr_str(g, "extra_json", ""))
 
 
 def hash_selection(sel: Selection) -> str:
@@ -1059,7 +1195,7 @@ def write_runs(
     _col(
         g,
         "argv",
-        [J(tuple(s.argv)) for s in specs],
+        [J(s.argv) for s in specs],
         TEXT,
         "solver command with placeholders filled (JSON array)",
     )
@@ -1135,11 +1271,25 @@ def write_runs(
         "SHA-256 of each output file keyed by its path relative to run_dir (JSON)",
     )
 
+    _col(
+        g,
+        "spec_extra",
+        [extra_json(s) for s in specs],
+        TEXT,
+        "RunSpec fields beyond the columns above (tagged JSON)",
+    )
+    _col(
+        g,
+        "outcome_extra",
+        [extra_json(o) if o else "" for o in outs],
+        TEXT,
+        "RunOutcome fields beyond the columns above (tagged JSON)",
+    )
     att = put_group(g, "attempts", "one row per attempt of every run")
     rows = [(r, a) for r, o in enumerate(outs) if o for a in o.attempts]
     _col(att, "run_row", [r for r, _ in rows], ONE, "row of the run in the runs table", np.int64)
     _col(att, "number", [int(a.number) for _, a in rows], ONE, "attempt number", np.int64)
-    _col(att, "argv", [J(tuple(a.argv)) for _, a in rows], TEXT, "command run (JSON array)")
+    _col(att, "argv", [J(a.argv) for _, a in rows], TEXT, "command run (JSON array)")
     _col(
         att,
         "started",
@@ -1192,6 +1342,13 @@ def write_runs(
     _col(att, "error", [a.error for _, a in rows], TEXT, "why it could not start, if so")
     _col(
         att,
+        "extra_json",
+        [extra_json(a) for _, a in rows],
+        TEXT,
+        "Attempt fields beyond the columns above (tagged JSON)",
+    )
+    _col(
+        att,
         "exact_json",
         [
             J(
@@ -1225,31 +1382,39 @@ def read_runs(rev: h5py.Group) -> tuple[list[RunSpec], list[RunOutcome]]:
     for i in range(n):
         sj = from_json(t["spec_json"][i])
         specs.append(
-            RunSpec(
-                run_id=str(t["run_id"][i]),
-                point_index=sj["point_index"],
-                params=from_json(t["params"][i]),
-                weight=sj["weight"],
-                run_dir=Path(t["run_dir"][i]),
-                argv=from_json(t["argv"][i]),
-                deck_hashes=from_json(t["deck_hashes"][i]),
-                key=str(t["key"][i]),
+            build(
+                RunSpec,
+                dict(
+                    run_id=str(t["run_id"][i]),
+                    point_index=sj["point_index"],
+                    params=from_json(t["params"][i]),
+                    weight=sj["weight"],
+                    run_dir=Path(t["run_dir"][i]),
+                    argv=from_json(t["argv"][i]),
+                    deck_hashes=from_json(t["deck_hashes"][i]),
+                    key=str(t["key"][i]),
+                ),
+                str(t["spec_extra"][i]) if "spec_extra" in t else "",
             )
         )
     attempts: dict[int, list[Attempt]] = {}
     for j in range(len(a["run_row"])):
         ex = from_json(a["exact_json"][j])
         attempts.setdefault(int(a["run_row"][j]), []).append(
-            Attempt(
-                number=ex["number"],
-                argv=from_json(a["argv"][j]),
-                started=ex["started"],
-                ended=ex["ended"],
-                exit_status=ex["exit_status"],
-                timed_out=bool(a["timed_out"][j]),
-                stdout_tail=str(a["stdout_tail"][j]),
-                stderr_tail=str(a["stderr_tail"][j]),
-                error=str(a["error"][j]),
+            build(
+                Attempt,
+                dict(
+                    number=ex["number"],
+                    argv=from_json(a["argv"][j]),
+                    started=ex["started"],
+                    ended=ex["ended"],
+                    exit_status=ex["exit_status"],
+                    timed_out=bool(a["timed_out"][j]),
+                    stdout_tail=str(a["stdout_tail"][j]),
+                    stderr_tail=str(a["stderr_tail"][j]),
+                    error=str(a["error"][j]),
+                ),
+                str(a["extra_json"][j]) if "extra_json" in a else "",
             )
         )
     n_out = int(g.attrs["n_outcomes"])
@@ -1260,15 +1425,19 @@ def read_runs(rev: h5py.Group) -> tuple[list[RunSpec], list[RunOutcome]]:
             continue
         if row >= n_out:
             raise StoreFormatError(f"{g.name}: outcome_row {row} out of range")
-        outcomes[row] = RunOutcome(
-            run_id=specs[i].run_id,
-            key=str(t["outcome_key"][i]),
-            state=str(t["state"][i]),  # type: ignore[arg-type]
-            attempts=tuple(attempts.get(i, ())),
-            run_dir=from_json(t["outcome_run_dir"][i]),
-            output_hashes=from_json(t["output_hashes"][i]),
-            message=str(t["message"][i]),
-            reused_from=str(t["reused_from"][i]),
+        outcomes[row] = build(
+            RunOutcome,
+            dict(
+                run_id=specs[i].run_id,
+                key=str(t["outcome_key"][i]),
+                state=str(t["state"][i]),
+                attempts=tuple(attempts.get(i, ())),
+                run_dir=from_json(t["outcome_run_dir"][i]),
+                output_hashes=from_json(t["output_hashes"][i]),
+                message=str(t["message"][i]),
+                reused_from=str(t["reused_from"][i]),
+            ),
+            str(t["outcome_extra"][i]) if "outcome_extra" in t else "",
         )
     if any(o is None for o in outcomes):
         raise StoreFormatError(f"{g.name}: outcome rows are not a permutation")
@@ -1332,6 +1501,13 @@ def write_results(
     _col(vg, "reason", [v.reason for v in values], TEXT, "why the value is not ok")
     _col(
         vg,
+        "extra_json",
+        [extra_json(v) for v in values],
+        TEXT,
+        "QoIValue fields beyond the columns here (tagged JSON)",
+    )
+    _col(
+        vg,
         "value_shape",
         [json.dumps(list(a.shape)) for a in arrays],
         TEXT,
@@ -1371,6 +1547,7 @@ def write_results(
             mmd_growth=float(e.mmd_growth),
             control_variate=to_json(e.control_variate, "control_variate"),
             details=to_json(e.details, "details"),
+            extra_json=extra_json(e),
             exact_json=to_json(
                 {
                     "n_used": e.n_used,
@@ -1437,12 +1614,16 @@ def read_results(rev: h5py.Group) -> tuple[list[QoIValue], list[QoIEstimate]]:
         shape = tuple(json.loads(cols["value_shape"][i]))
         val = data[s : s + c].reshape(shape).astype(np.dtype(str(cols["value_dtype"][i])))
         values.append(
-            QoIValue(
-                run_id=str(cols["run_id"][i]),
-                name=str(cols["name"][i]),
-                value=val,
-                status=str(cols["status"][i]),  # type: ignore[arg-type]
-                reason=str(cols["reason"][i]),
+            build(
+                QoIValue,
+                dict(
+                    run_id=str(cols["run_id"][i]),
+                    name=str(cols["name"][i]),
+                    value=val,
+                    status=str(cols["status"][i]),
+                    reason=str(cols["reason"][i]),
+                ),
+                str(cols["extra_json"][i]) if "extra_json" in cols else "",
             )
         )
     eg = need(g, "estimates")
@@ -1451,20 +1632,24 @@ def read_results(rev: h5py.Group) -> tuple[list[QoIValue], list[QoIEstimate]]:
         q = need(eg, f"e{i:04d}")
         ex = attr_json(q, "exact_json")
         estimates.append(
-            QoIEstimate(
-                name=attr_str(q, "name"),
-                units=attr_str(q, "units"),
-                mean=get_array(need(q, "mean")),
-                sd=get_array(need(q, "sd")),
-                quantiles=_get_array_dict(need(q, "quantiles")),
-                exceedance=_get_array_dict(need(q, "exceedance")),
-                uncertainty=_get_array_dict(need(q, "uncertainty")),
-                control_variate=attr_json(q, "control_variate"),
-                n_used=ex["n_used"],
-                n_missing=ex["n_missing"],
-                weights_resolved=ex["weights_resolved"],
-                mmd_growth=ex["mmd_growth"],
-                details=attr_json(q, "details"),
+            build(
+                QoIEstimate,
+                dict(
+                    name=attr_str(q, "name"),
+                    units=attr_str(q, "units"),
+                    mean=get_array(need(q, "mean")),
+                    sd=get_array(need(q, "sd")),
+                    quantiles=_get_array_dict(need(q, "quantiles")),
+                    exceedance=_get_array_dict(need(q, "exceedance")),
+                    uncertainty=_get_array_dict(need(q, "uncertainty")),
+                    control_variate=attr_json(q, "control_variate"),
+                    n_used=ex["n_used"],
+                    n_missing=ex["n_missing"],
+                    weights_resolved=ex["weights_resolved"],
+                    mmd_growth=ex["mmd_growth"],
+                    details=attr_json(q, "details"),
+                ),
+                attr_str(q, "extra_json", ""),
             )
         )
     return values, estimates

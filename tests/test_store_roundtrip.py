@@ -105,6 +105,7 @@ def odd_chain(n: int = 50, *, rng: int = 0, diagnostics: bool = True) -> Chain:
             thresholds={"rhat": 1.01, "ess_bulk": 400.0},
             passed=False,
             messages=("R-hat of κ_ü 1.02 > 1.01", "ESS of S/y 0.0 < 400 \u2014 too small"),
+            details={"sampler": "ensemble", "model_evaluations": 12000, "seconds": 1.5},
         )
     return Chain(
         samples=samples,
@@ -567,3 +568,32 @@ def test_rewriting_a_section_reuses_freed_space(store: Path) -> None:
         for _ in range(3):
             w.write_chain(rev, chain)
     assert store.stat().st_size < size + chain.samples.nbytes // 2
+
+
+def test_fields_added_to_records_later_round_trip(store: Path, monkeypatch) -> None:
+    # records.py lets stages add fields with defaults; the store keeps unknown fields in its
+    # extra_json column/attribute. Simulate such a field on QoIValue and Chain.
+    import winnow.tasks._store as layout
+    from winnow.tasks import records
+
+    @dataclasses.dataclass(frozen=True)
+    class QoIValue(records.QoIValue):
+        units_seen: str = ""
+        samples_read: int = 0
+
+    @dataclasses.dataclass(frozen=True)
+    class Chain(records.Chain):
+        thinning: int = 1
+
+    monkeypatch.setattr(layout, "QoIValue", QoIValue)
+    monkeypatch.setattr(layout, "Chain", Chain)
+    base = odd_chain(diagnostics=False)
+    chain = Chain(**{f.name: getattr(base, f.name) for f in dataclasses.fields(base)}, thinning=5)
+    v = QoIValue("p1", "q", np.array(1.0), "ok", "", units_seen="m ü", samples_read=3)
+    with RunStore.open_for_write(store) as w:
+        rev = w.new_revision("x")
+        w.write_chain(rev, chain)
+        w.write_results(rev, [v], [])
+        assert_same(chain, w.read_chain(rev), "chain")
+        assert_same([v], w.read_results(rev)[0], "values")
+    assert check(store).ok
