@@ -1,0 +1,463 @@
+"""Sample stage: calibrate a cheap model by MCMC and return the posterior as a :class:`Chain`.
+
+The user's model is named ``"module:function"`` (:func:`load_callable`); with priors and
+(for a forward model) observations and a likelihood, :func:`build_log_posterior` makes the
+log posterior, and :func:`sample` runs several chains of one of the samplers in :data:`SAMPLERS`
+from over-dispersed starting points (independent prior draws) in an unconstrained space,
+removes the burn-in, and attaches the convergence diagnostics of
+:mod:`winnow.tasks.diagnostics`. Results are in the user's units.
+
+Samplers
+--------
+``adaptive_metropolis``
+    Adaptive Metropolis (Haario, Saksman & Tamminen 2001), each chain adapting its own
+    proposal covariance; a global proposal scale is tuned during burn-in only.
+``ensemble``
+    Affine-invariant ensemble sampler with the stretch move (Goodman & Weare 2010); the
+    chains are the walkers of one ensemble (at least ``max(4, 2 d)`` of them).
+``de_mcmc``
+    Differential-evolution MCMC (ter Braak 2006); walkers as for ``ensemble``.
+
+Checkpoints
+-----------
+``checkpoint(state)`` is called every ``checkpoint_every`` iterations with a dict of arrays,
+numbers and strings holding everything needed to go on: positions, log densities, the random
+generator's state (as JSON text), the move's adaptation state and the draws so far.
+``sample(..., resume=state)`` continues from such a dict and gives the same chain as a run
+that was never interrupted (same settings; the ``rng`` argument is then ignored).
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any, Literal
+
+import numpy as np
+
+from winnow.tasks._plots import plot_trace_pairs
+from winnow.tasks._posterior import LogPosterior, build_log_posterior, load_callable
+from winnow.tasks._priors import DISTS, Prior, PriorSet, as_prior_set
+from winnow.tasks._samplers import MOVES, Move, StepContext
+from winnow.tasks.diagnostics import _summarise, _validate_thresholds, burn_in_count
+from winnow.tasks.records import Chain
+
+__all__ = [
+    "DISTS",
+    "SAMPLERS",
+    "STATE_FORMAT",
+    "LogPosterior",
+    "Move",
+    "Prior",
+    "PriorSet",
+    "build_log_posterior",
+    "load_callable",
+    "plot_trace_pairs",
+    "sample",
+]
+
+SamplerName = Literal["adaptive_metropolis", "ensemble", "de_mcmc"]
+SAMPLERS: tuple[str, ...] = tuple(MOVES)
+STATE_FORMAT = "winnow.sample-state/1"
+_MAX_START_ROUNDS = 100  # prior draws per chain tried for a finite starting point
+_RESET_FRACTIONS = (0.2, 0.4, 0.6)  # points in the burn-in where stray walkers are reset
+
+
+def _validate_int(value: Any, name: str, minimum: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise TypeError(f"{name} must be an integer, got {value!r}")
+    if value < minimum:
+        raise ValueError(f"{name} must be >= {minimum}, got {value}")
+    return int(value)
+
+
+def _resolve_priors(
+    log_posterior: Callable[[np.ndarray], np.ndarray],
+    priors: PriorSet | Sequence[Prior | Mapping[str, Any]] | None,
+) -> PriorSet:
+    if isinstance(log_posterior, LogPosterior):
+        ps = log_posterior.priors
+        if priors is not None:
+            given = as_prior_set(priors).names
+            if ps.names[: len(given)] != given:
+                raise ValueError(
+                    f"priors {list(given)} do not match the log posterior's parameters "
+                    f"{list(ps.names)}"
+                )
+        return ps
+    if not callable(log_posterior):
+        raise TypeError(f"log_posterior must be callable, got {type(log_posterior).__name__}")
+    if priors is None:
+        raise ValueError("priors are needed with a plain log_posterior function")
+    return as_prior_set(priors)
+
+
+class _Target:
+    """Log posterior in the unconstrained space: ``log p(x(u)) + log|dx/du|``."""
+
+    def __init__(self, log_posterior: Callable[[np.ndarray], np.ndarray], ps: PriorSet):
+        self.f = log_posterior
+        self.ps = ps
+        self.label = getattr(log_posterior, "model", None) or getattr(
+            log_posterior, "__qualname__", "log_posterior"
+        )
+
+    def __call__(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Return (target at u, log posterior at x(u), x(u))."""
+        x = self.ps.to_user(u)
+        lp = np.asarray(self.f(x), dtype=np.float64)
+        if lp.shape != (len(u),):
+            raise ValueError(
+                f"log posterior {self.label} returned shape {lp.shape} for {len(u)} rows; "
+                f"expected ({len(u)},)"
+            )
+        lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
+        return lp + self.ps.log_jacobian(u), lp, x
+
+
+def _starting_points(
+    target: _Target, ps: PriorSet, n_chains: int, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Independent prior draws with a finite log posterior, one per chain (over-dispersed
+    with respect to the posterior whenever the data are informative)."""
+    d = ps.d
+    u = np.empty((n_chains, d))
+    lpu = np.empty(n_chains)
+    lpx = np.empty(n_chains)
+    filled = np.zeros(n_chains, dtype=bool)
+    tried = 0
+    for _ in range(_MAX_START_ROUNDS):
+        need = np.flatnonzero(~filled)
+        if need.size == 0:
+            break
+        cand = ps.to_unconstrained(ps.draw(need.size, rng))
+        ok_u = np.isfinite(cand).all(axis=1)
+        cand = np.where(ok_u[:, None], cand, 0.0)
+        lu, lx, _ = target(cand)
+        tried += need.size
+        ok = ok_u & np.isfinite(lu)
+        u[need[ok]], lpu[need[ok]], lpx[need[ok]] = cand[ok], lu[ok], lx[ok]
+        filled[need[ok]] = True
+    if not filled.all():
+        raise ValueError(
+            f"model {target.label}: the log posterior was -inf or NaN at all {tried} "
+            f"parameter sets drawn from the prior for {int((~filled).sum())} of "
+            f"{n_chains} chains; check that the model returns finite values inside the prior"
+        )
+    return u, lpu, lpx
+
+
+def _reset_strays(
+    u: np.ndarray, lpu: np.ndarray, lpx: np.ndarray, x: np.ndarray, rng: np.random.Generator
+) -> None:
+    """Move stray ensemble walkers onto good ones (during burn-in only).
+
+    An ensemble walker can be caught far out in a tail where the others' positions give it
+    no useful direction (e.g. along a bound mapped to infinity), and then pulls the whole
+    sample off. A walker whose log density is below the best one by more than the
+    1 - 1e-6 quantile of chi^2_d / 2 (what a Gaussian posterior would allow) is moved to the
+    position of a randomly chosen walker that is not. Done only while the draws are
+    discarded as burn-in, so the kept draws are untouched (common practice for ensemble
+    samplers; not part of Goodman & Weare 2010).
+    """
+    from scipy import stats
+
+    gap = 0.5 * float(stats.chi2.isf(1e-6, u.shape[1]))
+    stray = lpu < lpu.max() - gap
+    good = np.flatnonzero(~stray)
+    if not stray.any() or good.size < stray.sum():
+        return
+    src = good[rng.integers(good.size, size=int(stray.sum()))]
+    u[stray], lpu[stray], lpx[stray], x[stray] = u[src], lpu[src], lpx[src], x[src]
+
+
+def _rng_to_text(rng: np.random.Generator) -> str:
+    return json.dumps(rng.bit_generator.state)
+
+
+def _rng_from_text(text: str) -> np.random.Generator:
+    state = json.loads(text)
+    bitgen = getattr(np.random, state["bit_generator"])()
+    bitgen.state = state
+    return np.random.Generator(bitgen)
+
+
+def sample(
+    log_posterior: Callable[[np.ndarray], np.ndarray],
+    priors: PriorSet | Sequence[Prior | Mapping[str, Any]] | None = None,
+    *,
+    sampler: SamplerName = "adaptive_metropolis",
+    n_chains: int = 4,
+    n_draws: int = 4000,
+    burn_in: int | Literal["half", "none"] = "half",
+    thin: int = 1,
+    rng: int | np.random.Generator | None = None,
+    progress: Callable[[int, int, str], None] | None = None,
+    checkpoint: Callable[[dict[str, Any]], None] | None = None,
+    checkpoint_every: int = 500,
+    resume: Mapping[str, Any] | None = None,
+    thresholds: Mapping[str, float] | None = None,
+) -> Chain:
+    """Run MCMC chains on a log posterior and return the draws with their diagnostics.
+
+    Parameters
+    ----------
+    log_posterior : LogPosterior or callable
+        Unnormalised log posterior in the user's units, ``(k, d) -> (k,)``. A
+        :class:`LogPosterior` carries its own priors (including an estimated noise scale).
+    priors : sequence of Prior or dict, optional
+        The parameters' priors (transforms, support, starting points). With a
+        :class:`LogPosterior` they may be left out; if given they must be its leading ones.
+    sampler : {"adaptive_metropolis", "ensemble", "de_mcmc"}
+    n_chains : int
+        Chains (ensemble walkers). Ensemble samplers need at least ``max(4, 2 d)``.
+    n_draws : int
+        Iterations per chain, burn-in included.
+    burn_in : "half", "none" or int
+        Draws dropped from the start of every chain (default: the first half).
+    thin : int
+        Keep every ``thin``-th draw after the burn-in.
+    rng : int or numpy.random.Generator, optional
+    progress : callable, optional
+        ``progress(done, total, what)``, called about 100 times.
+    checkpoint : callable, optional
+        ``checkpoint(state)`` every ``checkpoint_every`` iterations (see the module notes).
+    checkpoint_every : int
+    resume : dict, optional
+        A state passed to ``checkpoint`` by an earlier run with the same settings.
+    thresholds : dict, optional
+        ``rhat_max``, ``ess_bulk_min``, ``ess_tail_min`` (see
+        :func:`winnow.tasks.diagnostics.diagnose`).
+
+    Returns
+    -------
+    Chain
+        Rows ``(n_chains * kept, d)`` in the user's units, chain by chain;
+        ``log_density`` the log posterior of each row (without the Jacobian);
+        ``source`` ``"sampled:<sampler>"``; ``diagnostics`` filled in (``acceptance`` over
+        the kept iterations, ``details`` with evaluation counts).
+
+    Raises
+    ------
+    ValueError, TypeError
+        Bad settings, a resume state that does not match, or a model that gives no finite
+        log posterior at any starting point.
+
+    References
+    ----------
+    See :mod:`winnow.tasks._samplers` and :mod:`winnow.tasks.diagnostics`.
+    """
+    ps = _resolve_priors(log_posterior, priors)
+    d = ps.d
+    if sampler not in MOVES:
+        raise ValueError(f"sampler must be one of {', '.join(MOVES)}, got {sampler!r}")
+    move_cls = MOVES[sampler]
+    n_chains = _validate_int(n_chains, "n_chains", 1)
+    n_draws = _validate_int(n_draws, "n_draws", 8)
+    thin = _validate_int(thin, "thin", 1)
+    checkpoint_every = _validate_int(checkpoint_every, "checkpoint_every", 1)
+    if move_cls.ensemble and n_chains < max(4, 2 * d):
+        raise ValueError(
+            f"sampler {sampler!r} needs n_chains >= max(4, 2 d) = {max(4, 2 * d)} walkers "
+            f"for {d} parameters, got {n_chains}"
+        )
+    n_burn, rule = burn_in_count(n_draws, burn_in)
+    n_kept = len(range(n_burn, n_draws, thin))
+    if n_kept < 4:
+        raise ValueError(
+            f"only {n_kept} draws per chain would be kept (n_draws={n_draws}, burn-in "
+            f"{n_burn}, thin={thin}); at least 4 are needed"
+        )
+    if thin > 1:
+        rule += f"; then every {thin}th draw kept"
+    limits = _validate_thresholds(thresholds)
+    for name, f in (("progress", progress), ("checkpoint", checkpoint)):
+        if f is not None and not callable(f):
+            raise TypeError(f"{name} must be callable, got {type(f).__name__}")
+
+    target = _Target(log_posterior, ps)
+    move = move_cls(d, n_chains, ps.unconstrained_scale())
+    kept = np.empty((n_chains, n_kept, d))
+    kept_lp = np.empty((n_chains, n_kept))
+    accepted = np.zeros(n_chains)
+    last_ap = np.full(n_chains, np.nan)
+    settings = {
+        "format": STATE_FORMAT,
+        "sampler": sampler,
+        "n_chains": n_chains,
+        "n_draws": n_draws,
+        "burn_in": n_burn,
+        "thin": thin,
+        "names": json.dumps(list(ps.names)),
+    }
+    # The log posterior may have been used before: count this run's evaluations only.
+    evals0 = -int(getattr(log_posterior, "n_evals", 0))
+    nonfinite0 = -int(getattr(log_posterior, "n_nonfinite", 0))
+    if resume is None:
+        gen = np.random.default_rng(rng)
+        u, lpu, lpx = _starting_points(target, ps, n_chains, gen)
+        start, filled = 0, 0
+    else:
+        gen, u, lpu, lpx, start, filled = _restore(
+            resume, settings, move, kept, kept_lp, accepted, last_ap
+        )
+        evals0 += int(_plain(resume.get("n_evals", 0)))
+        nonfinite0 += int(_plain(resume.get("n_nonfinite", 0)))
+
+    if move_cls.ensemble:
+        h = n_chains // 2
+        halves = [np.arange(h), np.arange(h, n_chains)]
+        groups = [(halves[0], halves[1]), (halves[1], halves[0])]
+    else:
+        groups = [(np.arange(n_chains), np.arange(0))]
+    x = ps.to_user(u)
+    reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0} if move_cls.ensemble else set()
+    what = f"sampling ({sampler})"
+    report_every = max(1, n_draws // 100)
+    t_start = time.perf_counter()
+    for t in range(start, n_draws):
+        adapting = t < n_burn
+        for g, comp in groups:
+            ctx = StepContext(
+                iteration=t,
+                index=g,
+                adapting=adapting,
+                accept_prob=None if t == 0 else last_ap[g],
+                burn_in=n_burn,
+            )
+            y, log_q = move.propose(u[g], u[comp], gen, ctx)
+            lu_y, lx_y, x_y = target(y)
+            # lu_y is finite or -inf, lpu finite: log_alpha is never NaN.
+            log_alpha = lu_y - lpu[g] + log_q
+            acc = np.log(gen.random(len(g))) < log_alpha
+            last_ap[g] = np.exp(np.minimum(log_alpha, 0.0))
+            take = g[acc]
+            u[take], lpu[take], lpx[take], x[take] = y[acc], lu_y[acc], lx_y[acc], x_y[acc]
+            if not adapting:
+                accepted[g] += acc
+        if t in reset_at:
+            _reset_strays(u, lpu, lpx, x, gen)
+        if t >= n_burn and (t - n_burn) % thin == 0:
+            kept[:, filled] = x
+            kept_lp[:, filled] = lpx
+            filled += 1
+        done = t + 1
+        if checkpoint is not None and done % checkpoint_every == 0 and done < n_draws:
+            state = dict(settings)
+            state.update(
+                iteration=done,
+                rng=_rng_to_text(gen),
+                u=u.copy(),
+                lp_u=lpu.copy(),
+                lp_x=lpx.copy(),
+                accept_prob=last_ap.copy(),
+                accepted=accepted.copy(),
+                draws=kept[:, :filled].copy(),
+                draws_log_density=kept_lp[:, :filled].copy(),
+                n_evals=evals0 + int(getattr(log_posterior, "n_evals", 0)),
+                n_nonfinite=nonfinite0 + int(getattr(log_posterior, "n_nonfinite", 0)),
+            )
+            state.update({f"move:{k}": v.copy() for k, v in move.state.items()})
+            checkpoint(state)
+        if progress is not None and (done % report_every == 0 or done == n_draws):
+            progress(done, n_draws, what)
+    seconds = time.perf_counter() - t_start
+
+    acceptance = accepted / max(n_draws - n_burn, 1)
+    n_evals = evals0 + int(getattr(log_posterior, "n_evals", 0))
+    n_nonfinite = nonfinite0 + int(getattr(log_posterior, "n_nonfinite", 0))
+    diag = _summarise(
+        kept, ps.names, burn_in=n_burn, rule=rule, acceptance=acceptance, thresholds=limits
+    )
+    details = {
+        "sampler": sampler,
+        "n_iterations": n_draws,
+        "thin": thin,
+        "model_evaluations": n_evals,
+        "nonfinite_evaluations": n_nonfinite,
+        "seconds": seconds,
+        "resumed_at": int(resume["iteration"]) if resume is not None else 0,
+    }
+    messages = diag.messages
+    if n_nonfinite:
+        messages = (
+            *messages,
+            f"note: the model gave NaN or infinite output at {n_nonfinite} of {n_evals} "
+            "evaluations; those points were treated as log density -inf",
+        )
+    diag = type(diag)(**{**diag.__dict__, "details": details, "messages": messages})
+    return Chain(
+        samples=kept.reshape(-1, d),
+        names=ps.names,
+        units=ps.units,
+        chain_index=np.repeat(np.arange(n_chains, dtype=np.int64), n_kept),
+        draw_index=np.tile(np.arange(n_kept, dtype=np.int64), n_chains),
+        log_density=kept_lp.reshape(-1),
+        source=f"sampled:{sampler}",
+        diagnostics=diag,
+    )
+
+
+def _restore(
+    state: Mapping[str, Any],
+    settings: dict[str, Any],
+    move: Move,
+    kept: np.ndarray,
+    kept_lp: np.ndarray,
+    accepted: np.ndarray,
+    last_ap: np.ndarray,
+) -> tuple[np.random.Generator, np.ndarray, np.ndarray, np.ndarray, int, int]:
+    """Check a resume state against this run's settings and load it in place."""
+    if not isinstance(state, Mapping):
+        raise TypeError(f"resume must be a dict from a checkpoint, got {type(state).__name__}")
+    missing = [k for k in (*settings, "iteration", "rng", "u", "lp_u", "lp_x") if k not in state]
+    if missing:
+        raise ValueError(f"resume: not a sample checkpoint (missing {', '.join(missing)})")
+    differ = [
+        f"{k}: checkpoint {_plain(state[k])!r} vs now {settings[k]!r}"
+        for k in settings
+        if _plain(state[k]) != settings[k]
+    ]
+    if differ:
+        raise ValueError(
+            "resume: the checkpoint was made with other settings: " + "; ".join(differ)
+        )
+    n, d = kept.shape[0], kept.shape[2]
+    u = np.array(state["u"], dtype=np.float64)
+    draws = np.asarray(state["draws"], dtype=np.float64)
+    if u.shape != (n, d) or draws.ndim != 3 or draws.shape[0] != n or draws.shape[2] != d:
+        raise ValueError(
+            f"resume: arrays of shape {u.shape} / {draws.shape} do not fit {n} chains of "
+            f"{d} parameters"
+        )
+    filled = draws.shape[1]
+    kept[:, :filled] = draws
+    kept_lp[:, :filled] = np.asarray(state["draws_log_density"], dtype=np.float64)
+    accepted[:] = np.asarray(state["accepted"], dtype=np.float64)
+    last_ap[:] = np.asarray(state["accept_prob"], dtype=np.float64)
+    for key in move.state:
+        if f"move:{key}" not in state:
+            raise ValueError(f"resume: the checkpoint lacks the move state {key!r}")
+        move.state[key] = np.array(state[f"move:{key}"], dtype=np.float64)
+    return (
+        _rng_from_text(_plain(state["rng"])),
+        u,
+        np.array(state["lp_u"], dtype=np.float64),
+        np.array(state["lp_x"], dtype=np.float64),
+        int(_plain(state["iteration"])),
+        filled,
+    )
+
+
+def _plain(value: Any) -> Any:
+    """Undo what a store may have done to a scalar (0-d arrays, numpy ints, bytes)."""
+    if isinstance(value, np.ndarray) and value.ndim == 0:
+        value = value[()]
+    if isinstance(value, bytes):
+        return value.decode()
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.floating):
+        return float(value)
+    return value
