@@ -1712,7 +1712,26 @@ def read_checkpoint(rev: h5py.Group, name: str) -> dict[str, Any] | None:
     return out
 
 
-def iter_datasets(f: h5py.File) -> Iterator[tuple[str, h5py.Dataset]]:
+def iter_datasets(f: h5py.File, problems: list[str]) -> Iterator[tuple[str, h5py.Dataset]]:
+    """Every dataset of the file; damage met while walking it is added to ``problems``."""
     found: list[tuple[str, h5py.Dataset]] = []
-    f.visititems(lambda n, o: found.append((n, o)) if isinstance(o, h5py.Dataset) else None)
+
+    def walk(group: h5py.Group) -> None:
+        try:
+            names = list(group)
+        except Exception as exc:  # damaged group index: many error types
+            problems.append(f"{group.name}: members cannot be listed ({exc})")
+            return
+        for name in names:
+            try:
+                obj = group[name]
+            except Exception as exc:
+                problems.append(f"{group.name.rstrip('/')}/{name}: cannot be opened ({exc})")
+                continue
+            if isinstance(obj, h5py.Dataset):
+                found.append((obj.name.lstrip("/"), obj))
+            elif isinstance(obj, h5py.Group):
+                walk(obj)
+
+    walk(f)
     yield from found

@@ -597,7 +597,7 @@ def check(path: str | Path) -> CheckReport:
         for name in f["revisions"]:
             if not S.REV_RE.match(name):
                 problems.append(f"/revisions/{name}: not a revision name (expected r0001 ...)")
-        for name, ds in S.iter_datasets(f):
+        for name, ds in S.iter_datasets(f, problems):
             n_ds += 1
             for a in ("units", "description", "sha256"):
                 if a not in ds.attrs:

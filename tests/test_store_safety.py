@@ -240,3 +240,14 @@ def test_stale_temp_files_cleaned(tmp_path: Path) -> None:
     with RunStore.open_for_write(p):
         pass
     assert not mine.exists()  # the lock holder removes them all
+
+
+def test_deleted_dataset_and_section_are_reported(tmp_path: Path) -> None:
+    p, _ = _store_with_one_revision(tmp_path)
+    with h5py.File(p, "r+") as f:
+        del f["revisions/r0001/chain/draw_index"]
+        del f["revisions/r0001/inputs"]
+    problems = check(p).problems
+    assert any(x.startswith("/revisions/r0001/chain: cannot be read back") for x in problems)
+    assert any("draw_index is missing" in x for x in problems)
+    assert "/revisions/r0001/inputs: group is missing" in problems
