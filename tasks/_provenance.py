@@ -19,6 +19,7 @@ digest as the dataset's ``sha256`` attribute and ``check`` recomputes it.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import math
 import platform
@@ -243,6 +244,11 @@ def version_info() -> dict[str, str]:
     Prefect's version is read from the installed distribution's metadata; Prefect itself is
     never imported (importing it costs seconds and starts logging machinery).
     """
+    return dict(_version_info())
+
+
+@functools.lru_cache(maxsize=1)
+def _version_info() -> dict[str, str]:
     import h5py
 
     from winnow import __version__

@@ -597,3 +597,20 @@ def test_fields_added_to_records_later_round_trip(store: Path, monkeypatch) -> N
         assert_same(chain, w.read_chain(rev), "chain")
         assert_same([v], w.read_results(rev)[0], "values")
     assert check(store).ok
+
+
+def test_prefect_version_read_without_importing_prefect() -> None:
+    import subprocess
+    import sys
+    from importlib.metadata import version
+
+    code = (
+        "import sys\n"
+        "from winnow.tasks.store import RunStore\n"
+        "from winnow.tasks._provenance import version_info\n"
+        "v = version_info()\n"
+        "assert not [m for m in sys.modules if m.split('.')[0] == 'prefect'], 'imported'\n"
+        "print(v['prefect_version'])\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == version("prefect")
