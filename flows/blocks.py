@@ -45,9 +45,13 @@ class SolverSettings(Block):
     dispatch_section = solver.as_config()
     """
 
+    template_dir: str = Field(
+        description="Folder of the deck templates and of the files to copy or link (an "
+        "absolute path, or relative to the study config)."
+    )
     templates: list[str] = Field(
-        description="Deck templates (Jinja2) rendered into every run folder; absolute paths "
-        "or paths relative to the study config."
+        description="Deck templates (Jinja2) relative to template_dir, rendered into every "
+        "run folder."
     )
     command: list[str] = Field(
         description="Solver command as an argument list with {deck}, {run_dir} and {python} "
@@ -75,7 +79,7 @@ class SolverSettings(Block):
     runner: Any = Field(
         "local",
         description="Where runs go: 'local', {dask: {address | local_cluster}} or "
-        "{batch: {submit, template, poll_seconds}}.",
+        "{batch: {submit, template, directives, poll_interval, max_wait, cancel}}.",
     )
 
     def as_config(self) -> dict[str, Any]:

@@ -87,10 +87,11 @@ def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
         src = _module_file(s.model.forward or s.model.log_density, search)
         if src is not None:
             files["model"] = src
+    tdir = resolve(here, config.dispatch.template_dir)
     for i, t in enumerate(config.dispatch.templates):
-        files[f"template{i}"] = resolve(here, t)
+        files[f"template{i}"] = tdir / t
     for i, c in enumerate(config.dispatch.copy_files):
-        files[f"copy{i}"] = resolve(here, c)
+        files[f"copy{i}"] = tdir / c
     for q in config.collect.qoi:
         src = _module_file(q.cheap_qoi, search)
         if src is not None:
@@ -151,8 +152,6 @@ def study_flow(
     """
     import yaml
 
-    from winnow.flows.dispatch import dispatch_flow
-    from winnow.tasks.dispatch import scan_run_folders
     from winnow.tasks.store import RunStore
 
     log = get_run_logger()
@@ -218,9 +217,7 @@ def study_flow(
             up_to_date = True
         else:
             up_to_date = False
-            known = store.successful_runs_by_key()
-            journal = scan_run_folders(resolve(here, config.work_dir))
-            outcomes = _dispatch(dispatch_flow, config, specs, known, journal, log)
+            outcomes = _dispatch(config, base, specs, store.successful_runs_by_key(), log)
             store.write_runs(rev, specs, [outcomes[s.run_id] for s in specs])
 
         # ---- collect ----------------------------------------------------------------------
@@ -267,48 +264,51 @@ def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | 
     return latest if stored_inputs == current else None
 
 
-def _dispatch(dispatch_flow, config, specs, known, journal, log) -> dict[str, RunOutcome]:
-    """Run the specs not already finished; returns an outcome for every spec."""
-    outcomes: dict[str, RunOutcome] = {}
-    todo = []
-    for s in specs:
-        j = journal.get(s.run_id)
-        if j is not None and j.key == s.key and j.state == "succeeded":
-            outcomes[s.run_id] = j  # finished before a crash: never run again
-        else:
-            todo.append(s)
+def _dispatch(
+    config: StudyConfig, base: Path, specs, known: dict[str, str], log
+) -> dict[str, RunOutcome]:
+    """Run every spec not already succeeded; returns an outcome for every spec.
+
+    Runs journalled as succeeded in their folders (a killed study) and runs whose key
+    succeeded in any store revision are not run again.
+    """
+    from winnow.flows.dispatch import dispatch_flow
+    from winnow.tasks.dispatch import dispatch, make_runner
+
     total = len(specs)
     progress_id = create_progress_artifact(
-        progress=100.0 * len(outcomes) / max(total, 1),
+        progress=0.0,
         key=f"{_key(config.study.name)}-runs-progress",
         description=f"Solver runs finished for study {config.study.name}",
     )
-    finished = [len(outcomes)]
+    finished = [0]
 
     def on_outcome(o: RunOutcome) -> None:
         finished[0] += 1
         update_progress_artifact(progress_id, 100.0 * finished[0] / max(total, 1))
 
-    if todo:
-        d = config.dispatch
-        runner = d.runner if isinstance(d.runner, str) else d.runner.model_dump(exclude_none=True)
-        for o in dispatch_flow(
-            todo,
-            runner=runner,
-            concurrency=d.concurrency,
-            timeout=d.timeout,
-            retries=d.retries,
-            retry_delay=d.retry_delay,
-            env=dict(d.env),
-            outputs=list(d.outputs),
-            known_successes=known,
-            on_outcome=on_outcome,
-        ):
-            outcomes[o.run_id] = o
+    d = config.dispatch
+    runner = d.runner if isinstance(d.runner, str) else d.runner.model_dump(exclude_none=True)
+    common = dict(
+        known_successes=known,
+        on_outcome=on_outcome,
+        timeout=d.timeout,
+        retries=d.retries,
+        retry_delay=d.retry_delay,
+        env=dict(d.env),
+        outputs=list(d.outputs),
+    )
+    if isinstance(runner, dict) and "batch" in runner:
+        if runner["batch"].get("template"):
+            runner["batch"]["template"] = str(resolve(base / "x", runner["batch"]["template"]))
+        result = dispatch(specs, runner=make_runner(runner, concurrency=d.concurrency), **common)
+    else:
+        result = dispatch_flow(specs, runner=runner, concurrency=d.concurrency, **common)
+    outcomes = {o.run_id: o for o in result}
     log.info(
-        "dispatch: %d runs, %d reused from the journal or the store",
+        "dispatch: %d runs; %d reused without running",
         total,
-        sum(1 for o in outcomes.values() if o.reused_from) + (total - len(todo)),
+        sum(1 for o in result if o.reused_from),
     )
     _outcomes_artifact(config.study.name, specs, outcomes)
     return outcomes

@@ -355,9 +355,22 @@ class BatchSettings(_Model):
     )
     template: str | None = Field(
         None,
-        description="Job script template (Jinja2), relative to the config; built-in if omitted.",
+        description="Job script template (Jinja2), relative to the config; a Slurm script is "
+        "built in.",
     )
-    poll_seconds: float = Field(5.0, gt=0, description="Seconds between completion checks (s).")
+    directives: list[str] = Field(
+        default_factory=list,
+        description="Extra scheduler directives written at the top of each job script, e.g. "
+        "'--time=04:00:00'.",
+    )
+    poll_interval: float = Field(5.0, gt=0, description="Seconds between completion checks (s).")
+    max_wait: float | None = Field(
+        None, gt=0, description="Give up on a job after this long (s); no limit when omitted."
+    )
+    cancel: list[str] = Field(
+        default_factory=lambda: ["scancel"],
+        description="Cancel command (argv) that takes the job id as last argument.",
+    )
 
 
 class BatchRunner(_Model):
@@ -392,20 +405,26 @@ def _argv_list(v: Any) -> Any:
 class DispatchSettings(_Model):
     """Dispatch stage: input decks and solver runs."""
 
+    template_dir: str = Field(
+        ".",
+        description="Folder of the deck templates and of the files to copy or link, relative "
+        "to the config file.",
+    )
     templates: list[str] = Field(
         min_length=1,
-        description="Deck templates (Jinja2), relative to the config; each is rendered into the "
-        "run folder under its name without a trailing '.j2'.",
+        description="Deck templates (Jinja2), relative to template_dir; each is rendered into "
+        "the run folder under the same relative path without a trailing '.j2'.",
     )
     copy_files: list[str] = Field(
         default_factory=list,
         alias="copy",
-        description="Files copied unchanged into every run folder (meshes, tables).",
+        description="Files copied unchanged into every run folder (meshes, tables), relative "
+        "to template_dir.",
     )
     link_files: list[str] = Field(
         default_factory=list,
         alias="link",
-        description="Files linked (symlink) into every run folder.",
+        description="Files linked (symlink) into every run folder, relative to template_dir.",
     )
     constants: dict[str, Any] = Field(
         default_factory=dict, description="User constants available in the templates."
@@ -438,7 +457,7 @@ class DispatchSettings(_Model):
             _runner_kind,
             custom_error_type="runner_kind",
             custom_error_message="expected 'local', {dask: {address | local_cluster}} or "
-            "{batch: {submit, template, poll_seconds}}",
+            "{batch: {submit, template, directives, poll_interval, max_wait, cancel}}",
         ),
     ] = Field("local", description="'local' processes, {dask: ...} or {batch: ...}.")
 

@@ -238,16 +238,10 @@ def prepare_runs(
     positions: Sequence[int] | None = None,
 ) -> list[RunSpec]:
     """Render one run folder per chosen point (or per listed position) and return the specs."""
-    from .dispatch import DeckSpec, point_run_id, render_run
+    from .dispatch import point_run_id, render_run
 
     d = config.dispatch
-    decks = DeckSpec(
-        templates=[resolve(base_dir / "x", t) for t in d.templates],
-        copies=[resolve(base_dir / "x", c) for c in d.copy_files],
-        links=[resolve(base_dir / "x", c) for c in d.link_files],
-        constants=dict(d.constants),
-        formats=dict(d.formats),
-    )
+    decks, template_root = deck_spec(config, base_dir)
     run_root = resolve(base_dir / "x", config.work_dir)
     run_root.mkdir(parents=True, exist_ok=True)
     specs = []
@@ -263,10 +257,25 @@ def prepare_runs(
                 run_root=run_root,
                 decks=decks,
                 command=solver_command(d.command),
-                template_root=base_dir,
+                template_root=template_root,
             )
         )
     return specs
+
+
+def deck_spec(config: StudyConfig, base_dir: Path):
+    """The dispatch stage's deck specification and template folder for a study."""
+    from .dispatch import DeckSpec
+
+    d = config.dispatch
+    decks = DeckSpec(
+        templates=list(d.templates),
+        copies=list(d.copy_files),
+        links=list(d.link_files),
+        constants=dict(d.constants),
+        formats=dict(d.formats),
+    )
+    return decks, resolve(base_dir / "x", d.template_dir)
 
 
 # --------------------------------------------------------------------------------------------
@@ -377,7 +386,6 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
     """
     import shutil
 
-    from .dispatch import DeckSpec, check_templates
     from .sampling import load_callable
 
     here = Path(base_dir) / "x"
@@ -420,25 +428,40 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
             except (ImportError, AttributeError, ValueError, TypeError) as exc:
                 raise ValueError(f"collect.qoi[{q.name}].cheap_qoi: {exc}") from None
     d = config.dispatch
+    decks, template_root = deck_spec(config, base_dir)
+    if not template_root.is_dir():
+        raise FileNotFoundError(f"dispatch.template_dir: folder not found: {template_root}")
     for field, items in (
         ("templates", d.templates),
         ("copy", d.copy_files),
         ("link", d.link_files),
     ):
         for i, rel in enumerate(items):
-            if not resolve(here, rel).is_file():
+            if not (template_root / rel).is_file():
                 raise FileNotFoundError(
-                    f"dispatch.{field}[{i}]: file not found: {resolve(here, rel)}"
+                    f"dispatch.{field}[{i}]: file not found: {template_root / rel}"
                 )
-    decks = DeckSpec(
-        templates=[resolve(here, t) for t in d.templates],
-        copies=[resolve(here, c) for c in d.copy_files],
-        links=[resolve(here, c) for c in d.link_files],
-        constants=dict(d.constants),
-        formats=dict(d.formats),
-    )
+    # Render one trial deck (prior midpoint) into a scratch folder: undefined names, syntax
+    # errors and paths escaping the run folder are reported now, before the study starts.
+    import tempfile
+
+    from .dispatch import render_run
+
     params = {p.name: _prior_midpoint(p) for p in config.parameters}
-    check_templates(decks, params, template_root=Path(base_dir))
+    with tempfile.TemporaryDirectory(prefix="winnow-preflight-") as scratch:
+        try:
+            render_run(
+                params,
+                run_id="preflight",
+                point_index=0,
+                weight=1.0,
+                run_root=scratch,
+                decks=decks,
+                command=solver_command(d.command),
+                template_root=template_root,
+            )
+        except ValueError as exc:
+            raise ValueError(f"dispatch.templates: {exc}") from None
     exe = solver_command(d.command)[0]
     if shutil.which(exe) is None and not resolve(here, exe).is_file():
         raise FileNotFoundError(
