@@ -172,41 +172,83 @@ def _outcome_rows(data: ReportData) -> list[dict[str, Any]]:
     ]
 
 
-def _estimate_rows(data: ReportData, *, all_rows: bool) -> list[dict[str, Any]]:
+def _display_estimate_rows(data: ReportData, est: QoIEstimate) -> list[dict[str, Any]]:
+    """Estimate table of one QoI for reading: units in the headers, long vectors thinned."""
+    vec = _is_vector(est)
+    axis = _axis_of(data, est) if vec else None
+    comps: list[int | None] = list(_rows_shown(int(np.size(est.mean)))) if vec else [None]
+    u = _u(est.units)
+    rows = []
+    for j in comps:
+        row: dict[str, Any] = {}
+        if axis is not None and j is not None:
+            row[f"{axis['name']}{_u(axis['units'])}"] = float(np.asarray(axis["values"])[j])
+        row[f"mean{u}"] = _num(_comp(est.mean, j))
+        row[f"sd{u}"] = _num(_comp(est.sd, j))
+        for q in sorted(est.quantiles):
+            row[f"{_pct(q)} quantile{u}"] = _num(_comp(est.quantiles[q], j))
+        for t in sorted(est.exceedance):
+            row[f"P(> {t:g}{' ' + est.units if est.units else ''})"] = _num(
+                _comp(est.exceedance[t], j)
+            )
+        if est.control_variate is not None:
+            row[f"multi-fidelity estimate{u}"] = _num(_comp(est.control_variate["mean"], j))
+        if not vec:
+            row["runs used"] = est.n_used
+            row["runs left out"] = est.n_missing
+        rows.append(row)
+    return rows
+
+
+def _estimate_rows(data: ReportData) -> list[dict[str, Any]]:
+    """Every estimate, one row per QoI (per axis value for a vector QoI), same columns."""
+    probs = sorted({float(q) for e in data.estimates for q in e.quantiles})
     rows = []
     for est in data.estimates:
-        comps: list[int | None]
-        axis = None
-        if _is_vector(est):
-            axis = _axis_of(data, est)
-            k = int(np.size(est.mean))
-            comps = list(range(k)) if all_rows else list(_rows_shown(k))
-        else:
-            comps = [None]
-        u = _u(est.units)
+        vec = _is_vector(est)
+        axis = _axis_of(data, est) if vec else None
+        comps: list[int | None] = list(range(int(np.size(est.mean)))) if vec else [None]
+        cv = est.control_variate
         for j in comps:
-            row: dict[str, Any] = {"quantity": est.name}
-            if axis is not None and j is not None:
-                row[f"{axis['name']}{_u(axis['units'])}"] = float(np.asarray(axis["values"])[j])
-            row[f"mean{u}"] = _num(_comp(est.mean, j))
-            row[f"sd{u}"] = _num(_comp(est.sd, j))
-            for q in sorted(est.quantiles):
-                row[f"{_pct(q)} quantile{u}"] = _num(_comp(est.quantiles[q], j))
-            for t in sorted(est.exceedance):
-                row[f"P(> {t:g}{' ' + est.units if est.units else ''})"] = _num(
-                    _comp(est.exceedance[t], j)
-                )
-            if est.control_variate is not None:
-                row[f"multi-fidelity estimate{u}"] = _num(_comp(est.control_variate["mean"], j))
-            if all_rows:  # tables and CSV carry every source per component
-                for key in UNCERTAINTY_LABELS:
-                    if key in est.uncertainty:
-                        row[f"{key}{u}"] = _num(_comp(est.uncertainty[key], j))
-                if est.control_variate is not None:
-                    row[f"multi-fidelity se{u}"] = _num(_comp(est.control_variate["se"], j))
+            row: dict[str, Any] = {
+                "quantity": est.name,
+                "units": est.units,
+                "axis": axis["name"] if axis else "",
+                "axis units": axis["units"] if axis else "",
+                "axis value": float(np.asarray(axis["values"])[j]) if axis else None,
+                "mean": _num(_comp(est.mean, j)),
+                "sd": _num(_comp(est.sd, j)),
+            }
+            for q in probs:
+                qv = est.quantiles.get(q)
+                row[f"quantile {_pct(q)}"] = None if qv is None else _num(_comp(qv, j))
+            for key in UNCERTAINTY_LABELS:
+                val = est.uncertainty.get(key)
+                row[key] = None if val is None else _num(_comp(val, j))
+            row["multi-fidelity estimate"] = None if cv is None else _num(_comp(cv["mean"], j))
+            row["multi-fidelity se"] = None if cv is None else _num(_comp(cv["se"], j))
             row["runs used"] = est.n_used
             row["runs left out"] = est.n_missing
             rows.append(row)
+    return rows
+
+
+def _exceedance_rows(data: ReportData) -> list[dict[str, Any]]:
+    rows = []
+    for est in data.estimates:
+        axis = _axis_of(data, est) if _is_vector(est) else None
+        for t in sorted(est.exceedance):
+            p = np.asarray(est.exceedance[t], dtype=float).reshape(-1)
+            for j, pj in enumerate(p):
+                rows.append(
+                    {
+                        "quantity": est.name,
+                        "threshold": float(t),
+                        "units": est.units,
+                        "axis value": float(np.asarray(axis["values"])[j]) if axis else None,
+                        "probability of exceeding": _num(pj),
+                    }
+                )
     return rows
 
 
@@ -314,28 +356,32 @@ def _multifidelity_rows(data: ReportData) -> list[dict[str, Any]]:
         if cv is None:
             continue
         vec = _is_vector(est)
-        pick = (lambda x: float(np.max(np.abs(np.asarray(x))))) if vec else _num
-        suffix = " (largest along the axis)" if vec else ""
-        rows.append(
-            {
-                "quantity": est.name,
-                "variant": "discrepancy form (coefficient 1)",
-                f"estimate{_u(est.units)}": None if vec else _num(cv["mean"]),
-                f"standard error{_u(est.units)}{suffix}": pick(cv["se"]),
-                "correlation costly/cheap": None if vec else _num(cv["correlation"]),
-                "coefficient": 1.0,
-            }
-        )
-        opt = cv.get("optimal")
-        if opt is not None:
+        note = "vector: largest standard error along the axis" if vec else ""
+        variants = [("discrepancy form (coefficient 1)", cv, 1.0)]
+        if cv.get("optimal") is not None:
+            opt = cv["optimal"]
+            variants.append(
+                (
+                    "optimal coefficient alpha = rho sd_costly / sd_cheap",
+                    opt,
+                    None if vec else _num(opt["alpha"]),
+                )
+            )
+        for label, part, coef in variants:
             rows.append(
                 {
                     "quantity": est.name,
-                    "variant": "optimal coefficient alpha = rho sd_costly / sd_cheap",
-                    f"estimate{_u(est.units)}": None if vec else _num(opt["mean"]),
-                    f"standard error{_u(est.units)}{suffix}": pick(opt["se"]),
+                    "units": est.units,
+                    "variant": label,
+                    "estimate": None if vec else _num(part["mean"]),
+                    "standard error": (
+                        float(np.nanmax(np.asarray(part["se"], dtype=float)))
+                        if vec
+                        else _num(part["se"])
+                    ),
                     "correlation costly/cheap": None if vec else _num(cv["correlation"]),
-                    "coefficient": None if vec else _num(opt["alpha"]),
+                    "coefficient": coef,
+                    "note": note,
                 }
             )
     return rows
@@ -374,9 +420,11 @@ def report_tables(data: ReportData) -> dict[str, list[dict[str, Any]]]:
     """The report's tables as lists of row dicts (for Prefect table artifacts and CSV).
 
     Keys: ``study``, ``diagnostics``, ``points``, ``outcomes``, ``reuse``, ``estimates`` (one
-    row per QoI, or per axis value for a vector QoI), ``uncertainty`` (one row per QoI and
-    source), ``multifidelity``, ``weights``, ``left_out`` and ``provenance``. A table with
-    nothing to show is an empty list.
+    row per QoI, or per axis value for a vector QoI, with every uncertainty source; the same
+    columns for every QoI, units in a column), ``exceedance`` (one row per QoI, threshold and
+    axis value), ``uncertainty`` (one row per QoI and source, with how it was obtained),
+    ``multifidelity``, ``weights``, ``left_out`` and ``provenance``. Values are plain str,
+    int, float or None (JSON-ready); a table with nothing to show is an empty list.
     """
     return {
         "study": _study_rows(data),
@@ -384,7 +432,8 @@ def report_tables(data: ReportData) -> dict[str, list[dict[str, Any]]]:
         "points": _points_rows(data),
         "outcomes": _outcome_rows(data),
         "reuse": [{"runs": k, "count": int(v)} for k, v in data.reuse_counts.items()],
-        "estimates": _estimate_rows(data, all_rows=True),
+        "estimates": _estimate_rows(data),
+        "exceedance": _exceedance_rows(data),
         "uncertainty": _uncertainty_rows(data),
         "multifidelity": _multifidelity_rows(data),
         "weights": _weights_rows(data),
@@ -471,10 +520,25 @@ def _md_table(rows: Sequence[dict[str, Any]]) -> str:
     return "\n".join(out) + "\n"
 
 
+def _md_blocks(blocks: list[tuple]) -> list[str]:
+    out = []
+    for kind, payload in blocks:
+        if kind == "p":
+            out.append(f"{payload}\n")
+        elif kind == "h3":
+            out.append(f"#### {payload}\n")
+        elif kind == "table":
+            out.append(_md_table(payload))
+        elif kind == "note":
+            out.append(f"_{payload}_\n")
+        elif kind == "list" and payload:
+            out.append("\n".join(f"- **{b}**: {t}" for b, t in payload) + "\n")
+    return out
+
+
 def report_markdown(data: ReportData) -> str:
     """The report as markdown (for a Prefect markdown artifact; pictures are in the HTML)."""
     t = report_tables(data)
-    shown = _estimate_rows(data, all_rows=False)
     parts = [
         f"# Collect report: {data.study}\n",
         f"> **Caution.** {CAUTION}\n",
@@ -493,21 +557,11 @@ def report_markdown(data: ReportData) -> str:
     parts += ["## Chosen points\n", _md_table(t["points"]), "## Runs\n", _md_table(t["outcomes"])]
     if t["reuse"]:
         parts += ["\n", _md_table(t["reuse"])]
-    parts += ["## Estimates\n", _md_table(shown)]
-    if len(shown) < len(t["estimates"]):
-        parts.append(
-            f"_Vector quantities: {len(shown)} of {len(t['estimates'])} rows shown; "
-            "all are in estimates.csv._\n"
-        )
-    parts += [
-        "## Uncertainty of the estimates\n",
-        _md_table(t["uncertainty"]),
-        "### Multi-fidelity estimate\n",
-        _md_table(t["multifidelity"]),
-        "### Weights and runs left out\n",
-        _md_table(t["weights"]),
-        _md_table(t["left_out"]) if t["left_out"] else "",
-    ]
+    for est in data.estimates:
+        parts.append(f"## Quantity: {est.name}{_u(est.units)}\n")
+        parts += _md_blocks(_qoi_blocks(data, est, t))
+    if t["weights"]:
+        parts += ["## Weights used per quantity\n", _md_table(t["weights"])]
     parts += ["## Provenance\n", _md_table(t["provenance"])]
     return "\n".join(parts)
 
@@ -526,7 +580,7 @@ h1{font-size:26px;margin:0 0 6px} h2{font-size:20px;margin:28px 0 8px;
 .fail{color:#b42318;font-weight:600} .ok{color:#1a7f37;font-weight:600}
 table{border-collapse:collapse;margin:6px 0 12px;font-size:13.5px}
 th,td{border:1px solid #d0d7de;padding:4px 8px;vertical-align:top}
-th{background:#f0f3f6;text-align:left;font-weight:600}
+th{background:#f0f3f6;text-align:left;font-weight:600;white-space:nowrap}
 td.n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 tr:nth-child(even) td{background:#fafbfc}
 .wrap{overflow-x:auto} .note{color:#57606a;font-size:13px}
@@ -586,73 +640,127 @@ def _qoi_values_for_plot(data: ReportData, est: QoIEstimate) -> tuple[np.ndarray
     )
 
 
+_MF_NOTE = (
+    "Chain mean of the cheap prediction plus the weighted mean of (costly minus cheap) at the "
+    "chosen points; its standard error combines the spread of that difference over the Kish "
+    "effective number of points with the chain's Monte Carlo error."
+)
+
+
+def _qoi_blocks(data: ReportData, est: QoIEstimate, tables: dict[str, list]) -> list[tuple]:
+    """The section of one QoI as renderer-neutral blocks: (kind, payload) with kind one of
+    ``p``, ``h3``, ``table``, ``note``, ``list`` (of (bold, text)) and ``image``."""
+    blocks: list[tuple] = []
+    desc = data.qoi_descriptions.get(est.name)
+    if desc:
+        blocks.append(("p", desc))
+    blocks.append(("p", _headline(data, est)))
+    rows = _display_estimate_rows(data, est)
+    blocks += [("h3", "Estimate"), ("table", rows)]
+    if _is_vector(est) and np.size(est.mean) > _MAX_VECTOR_ROWS:
+        blocks.append(
+            (
+                "note",
+                f"{len(rows)} of {np.size(est.mean)} axis values shown; all are in estimates.csv.",
+            )
+        )
+    blocks.append(("h3", "Uncertainty of the estimate, by source"))
+    if _is_vector(est):
+        blocks.append(("table", _vector_uncertainty_rows(data, est)))
+        blocks.append(
+            (
+                "list",
+                [
+                    (UNCERTAINTY_LABELS[k], _how(est, k))
+                    for k in UNCERTAINTY_LABELS
+                    if k in est.uncertainty
+                ],
+            )
+        )
+    else:
+        blocks.append(
+            (
+                "table",
+                [
+                    {"source": r["source"], f"value{_u(est.units)}": r["value"], "how": r["how"]}
+                    for r in tables["uncertainty"]
+                    if r["quantity"] == est.name
+                ],
+            )
+        )
+    mf = [r for r in tables["multifidelity"] if r["quantity"] == est.name]
+    if mf and not _is_vector(est):
+        u = _u(est.units)
+        blocks += [
+            ("h3", "Multi-fidelity (control-variate) estimate"),
+            (
+                "table",
+                [
+                    {
+                        "variant": r["variant"],
+                        f"estimate{u}": r["estimate"],
+                        f"standard error{u}": r["standard error"],
+                        "correlation costly/cheap": r["correlation costly/cheap"],
+                        "coefficient": r["coefficient"],
+                    }
+                    for r in mf
+                ],
+            ),
+            ("note", _MF_NOTE),
+        ]
+    left = [r for r in tables["left_out"] if r["quantity"] == est.name]
+    if left:
+        blocks += [
+            ("h3", "Runs left out of this estimate"),
+            ("table", [{k: v for k, v in r.items() if k != "quantity"} for r in left]),
+        ]
+    blocks.append(("image", est))
+    return blocks
+
+
 def _qoi_section(data: ReportData, est: QoIEstimate, tables: dict[str, list]) -> str:
     title = est.name + _u(est.units)
     out = [f'<h2 id="qoi-{_h(est.name)}">Quantity: {_h(title)}</h2>']
-    desc = data.qoi_descriptions.get(est.name)
-    if desc:
-        out.append(f"<p>{_h(desc)}</p>")
-    out.append(f"<p>{_h(_headline(data, est))}</p>")
-    rows = [r for r in _estimate_rows(data, all_rows=False) if r["quantity"] == est.name]
-    out.append("<h3>Estimate</h3>" + _html_table(rows))
-    if _is_vector(est) and np.size(est.mean) > _MAX_VECTOR_ROWS:
-        out.append(
-            f'<p class="note">{len(rows)} of {np.size(est.mean)} axis values shown; '
-            "all are in estimates.csv.</p>"
-        )
-    out.append("<h3>Uncertainty of the estimate, by source</h3>")
-    if _is_vector(est):
-        vrows = _vector_uncertainty_rows(data, est)
-        out.append(_html_table(vrows, "No uncertainty source could be computed."))
-        hows = [
-            f"<li><b>{_h(UNCERTAINTY_LABELS[k])}</b>: {_h(_how(est, k))}</li>"
-            for k in UNCERTAINTY_LABELS
-            if k in est.uncertainty
-        ]
-        if hows:
-            out.append('<ul class="note">' + "".join(hows) + "</ul>")
-    else:
-        unc = [
-            {k: v for k, v in r.items() if k not in ("quantity", "key")}
-            for r in tables["uncertainty"]
-            if r["quantity"] == est.name
-        ]
-        out.append(_html_table(unc, "No uncertainty source could be computed."))
-    mf = [
-        {k: v for k, v in r.items() if k != "quantity"}
-        for r in tables["multifidelity"]
-        if r["quantity"] == est.name
-    ]
-    if mf and not _is_vector(est):
-        out.append("<h3>Multi-fidelity (control-variate) estimate</h3>" + _html_table(mf))
-        out.append(
-            '<p class="note">Chain mean of the cheap prediction plus the weighted mean '
-            "of (costly minus cheap) at the chosen points; its standard error combines "
-            "the spread of that difference over the Kish effective number of points "
-            "with the chain's Monte Carlo error.</p>"
-        )
-    left = [r for r in tables["left_out"] if r["quantity"] == est.name]
-    if left:
-        out.append("<h3>Runs left out of this estimate</h3>")
-        out.append(_html_table([{k: v for k, v in r.items() if k != "quantity"} for r in left]))
-    values, weights, note = _qoi_values_for_plot(data, est)
-    if values.size:
-        cv = est.control_variate["mean"] if est.control_variate is not None else None
-        png = qoi_plot_png(
-            values,
-            weights,
-            name=est.name,
-            units=est.units,
-            mean=est.mean,
-            quantiles=est.quantiles,
-            thresholds=sorted(est.exceedance),
-            cv_mean=cv,
-            axis=_axis_of(data, est) if _is_vector(est) else None,
-        )
-        out.append(_img(png, f"weighted distribution of {est.name}"))
-        if note:
-            out.append(f'<p class="note">{_h(note)}</p>')
+    for kind, payload in _qoi_blocks(data, est, tables):
+        if kind == "p":
+            out.append(f"<p>{_h(payload)}</p>")
+        elif kind == "h3":
+            out.append(f"<h3>{_h(payload)}</h3>")
+        elif kind == "table":
+            out.append(_html_table(payload, "No uncertainty source could be computed."))
+        elif kind == "note":
+            out.append(f'<p class="note">{_h(payload)}</p>')
+        elif kind == "list" and payload:
+            out.append(
+                '<ul class="note">'
+                + "".join(f"<li><b>{_h(b)}</b>: {_h(t)}</li>" for b, t in payload)
+                + "</ul>"
+            )
+        elif kind == "image":
+            out.append(_qoi_image(data, payload))
     return "\n".join(out)
+
+
+def _qoi_image(data: ReportData, est: QoIEstimate) -> str:
+    values, weights, note = _qoi_values_for_plot(data, est)
+    if not values.size:
+        return ""
+    cv = est.control_variate["mean"] if est.control_variate is not None else None
+    png = qoi_plot_png(
+        values,
+        weights,
+        name=est.name,
+        units=est.units,
+        mean=est.mean,
+        quantiles=est.quantiles,
+        thresholds=sorted(est.exceedance),
+        cv_mean=cv,
+        axis=_axis_of(data, est) if _is_vector(est) else None,
+    )
+    out = _img(png, f"weighted distribution of {est.name}")
+    if note and png is not None:
+        out += f'<p class="note">{_h(note)}</p>'
+    return out
 
 
 def _html(data: ReportData) -> str:
@@ -805,19 +913,21 @@ def _write_csv(path: Path, rows: Sequence[dict[str, Any]]) -> Path:
 
 
 def export_csv(data: ReportData, out_dir: Path | str) -> list[Path]:
-    """Write ``points.csv`` (chosen points, weights, run state), ``qoi_values.csv`` (every
-    value read, with status and reason; one row per axis value for vector QoIs) and
-    ``estimates.csv`` (every estimate row with every uncertainty source per component) and
-    ``uncertainty.csv`` (the breakdown table of the report) into ``out_dir``.
+    """Write the chosen points and results as CSV files into ``out_dir``; return their paths.
+
+    ``points.csv``: chosen points, weights and run state; ``qoi_values.csv``: every value read,
+    with status and reason (one row per axis value for a vector QoI); ``estimates.csv``: every
+    estimate with every uncertainty source, per axis value; ``exceedance.csv``: exceedance
+    probabilities; ``uncertainty.csv``: the breakdown table with how each source was obtained.
     """
     t = report_tables(data)
     values = _value_rows(data)
-    unc = t["uncertainty"]
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     return [
         _write_csv(out / "points.csv", t["points"]),
         _write_csv(out / "qoi_values.csv", values),
         _write_csv(out / "estimates.csv", t["estimates"]),
-        _write_csv(out / "uncertainty.csv", unc),
+        _write_csv(out / "exceedance.csv", t["exceedance"]),
+        _write_csv(out / "uncertainty.csv", t["uncertainty"]),
     ]

@@ -225,6 +225,7 @@ def test_tables_match_the_estimates(data):
         "outcomes",
         "reuse",
         "estimates",
+        "exceedance",
         "uncertainty",
         "multifidelity",
         "weights",
@@ -233,16 +234,32 @@ def test_tables_match_the_estimates(data):
     }
     est = data.estimates[0]
     row = next(r for r in t["estimates"] if r["quantity"] == "drawdown_spring")
-    assert row["mean (m)"] == float(est.mean)
-    assert row["95% quantile (m)"] == float(est.quantiles[0.95])
-    assert row["P(> 4 m)"] == float(est.exceedance[4.0])
+    assert row["units"] == "m" and row["axis"] == "" and row["axis value"] is None
+    assert row["mean"] == float(est.mean)
+    assert row["quantile 95%"] == float(est.quantiles[0.95])
     assert row["runs used"] == 7 and row["runs left out"] == 1
-    assert row["bootstrap_se (m)"] == float(est.uncertainty["bootstrap_se"])
+    for key in ("bootstrap_se", "thinning_gap", "control_variate_se", "chain_mcse"):
+        assert row[key] == float(est.uncertainty[key])
+    assert row["multi-fidelity estimate"] == float(est.control_variate["mean"])
+    # every row has the same columns, whatever the quantity
+    assert len({tuple(r) for r in t["estimates"]}) == 1
     vec_rows = [r for r in t["estimates"] if r["quantity"] == "drawdown_history"]
-    assert [r["time (d)"] for r in vec_rows] == [1.0, 10.0, 30.0]
-    np.testing.assert_allclose([r["mean (m)"] for r in vec_rows], data.estimates[1].mean)
+    assert [r["axis value"] for r in vec_rows] == [1.0, 10.0, 30.0]
+    assert {r["axis units"] for r in vec_rows} == {"d"}
+    np.testing.assert_allclose([r["mean"] for r in vec_rows], data.estimates[1].mean)
+    assert all(r["thinning_gap"] is None for r in vec_rows)  # no cheap model for this one
+    (exc,) = t["exceedance"]
+    assert exc == {
+        "quantity": "drawdown_spring",
+        "threshold": 4.0,
+        "units": "m",
+        "axis value": None,
+        "probability of exceeding": float(est.exceedance[4.0]),
+    }
     sources = {r["key"] for r in t["uncertainty"] if r["quantity"] == "drawdown_spring"}
     assert sources == {"thinning_gap", "control_variate_se", "bootstrap_se", "chain_mcse"}
+    mf = t["multifidelity"]
+    assert [r["coefficient"] for r in mf] == [1.0, float(est.control_variate["optimal"]["alpha"])]
     assert len(t["points"]) == M
     assert sum(r["weight"] for r in t["points"]) == pytest.approx(1.0)
     assert t["points"][3]["run state"] == "failed"
@@ -255,11 +272,19 @@ def test_markdown_has_the_same_content(data):
     assert md.startswith("# Collect report: spring-demo")
     assert md.index("Caution") < md.index("## Study")
     t = report_tables(data)
-    for section in ("## Chosen points", "## Runs", "## Estimates", "## Uncertainty"):
+    for section in (
+        "## Chosen points",
+        "## Runs",
+        "## Quantity: drawdown_spring (m)",
+        "## Quantity: drawdown_history (m)",
+        "Uncertainty of the estimate",
+    ):
         assert section in md
     for r in t["uncertainty"]:
         assert r["source"] in md
     assert "| point | run id | chain row | weight |" in md
+    assert "| mean (m) | sd (m) | 5% quantile (m) |" in md
+    assert "| time (d) | mean (m) |" in md
 
 
 def test_export_csv(data, tmp_path):
@@ -268,6 +293,7 @@ def test_export_csv(data, tmp_path):
         "points.csv",
         "qoi_values.csv",
         "estimates.csv",
+        "exceedance.csv",
         "uncertainty.csv",
     ]
     with paths[0].open() as fh:
@@ -356,4 +382,4 @@ def test_quantity_without_usable_run_still_renders(tmp_path):
     d.estimates = d.estimates + [estimate_qoi(bad, d.selection.weights, name="head", units="m")]
     text = build_report(d, tmp_path).read_text()
     assert "head: no run gave a usable value (8 left out)." in text
-    assert report_tables(d)["estimates"][-1]["mean (m)"] is None
+    assert report_tables(d)["estimates"][-1]["mean"] is None
