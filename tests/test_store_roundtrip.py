@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import json
 import math
 from pathlib import Path, PurePath
 from typing import Any
@@ -15,6 +16,8 @@ from typing import Any
 import h5py
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from winnow.tasks.records import (
     Attempt,
@@ -614,3 +617,40 @@ def test_prefect_version_read_without_importing_prefect() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == version("prefect")
+
+
+# tagged JSON: any nested value built from the types records carry comes back equal
+_scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(min_value=-(2**100), max_value=2**100),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(),
+    st.builds(np.float32, st.floats(width=32)),
+    st.builds(np.int16, st.integers(-(2**15), 2**15 - 1)),
+    st.builds(np.array, st.lists(st.floats(), max_size=5)),
+)
+_keys = st.one_of(st.text(), st.integers(-5, 5), st.floats(allow_nan=False))
+_values = st.recursive(
+    _scalars,
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=4),
+        st.tuples(inner, inner),
+        st.dictionaries(_keys, inner, max_size=4),
+    ),
+    max_leaves=12,
+)
+
+
+@settings(max_examples=100, deadline=None)
+@given(_values)
+def test_tagged_json_round_trip(value: Any) -> None:
+    from winnow.tasks._store import from_json, to_json
+
+    text = to_json(value)
+
+    def bare(name: str) -> None:
+        raise AssertionError(f"bare {name} in the JSON text")
+
+    json.loads(text, parse_constant=bare)  # strict JSON (json would accept NaN otherwise)
+    assert_same(value, from_json(text), "value")
