@@ -251,3 +251,16 @@ def test_deleted_dataset_and_section_are_reported(tmp_path: Path) -> None:
     assert any(x.startswith("/revisions/r0001/chain: cannot be read back") for x in problems)
     assert any("draw_index is missing" in x for x in problems)
     assert "/revisions/r0001/inputs: group is missing" in problems
+
+
+def test_reader_keeps_a_consistent_snapshot_during_commits(tmp_path: Path) -> None:
+    p, chain = _store_with_one_revision(tmp_path)
+    with RunStore.open_read(p) as r:
+        with RunStore.open_for_write(p) as w:
+            w.new_revision("second\n")
+            w.write_chain("r0002", _chain(seed=9))
+        # the open reader still sees the file as it was when opened
+        assert r.revisions() == ["r0001"]
+        np.testing.assert_array_equal(r.read_chain("r0001").samples, chain.samples)
+    with RunStore.open_read(p) as r:
+        assert r.revisions() == ["r0001", "r0002"]
