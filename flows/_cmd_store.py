@@ -247,8 +247,7 @@ def register(app: typer.Typer) -> None:
         ] = None,
         as_json: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
     ) -> None:
-        """Show where a point's numbers came from: observations, chain row, selection,
-        decks, attempts and QoI values."""
+        """Show where a point came from: observations, chain row, selection, decks, attempts, QoIs."""
         from winnow.tasks.store import trace
 
         t = trace(store, point, revision=_revision_arg(revision))
@@ -277,8 +276,7 @@ def register(app: typer.Typer) -> None:
         rev2: Annotated[str, typer.Argument(help="Newer revision.")],
         as_json: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
     ) -> None:
-        """What changed between two revisions: config, data hashes, chosen points,
-        estimates."""
+        """Show what changed between two revisions: config, data hashes, points, estimates."""
         from winnow.tasks.store import diff
 
         d = diff(store, rev1, rev2)
