@@ -150,7 +150,9 @@ def weighted_quantile(
     its step of the weighted empirical CDF, ``p_k = sum_{j<=k} w_(j) - w_(k) / 2``, and
     interpolate linearly between the points ``(p_k, y_(k))``; below ``p_1`` the quantile is
     ``y_(1)`` and above ``p_m`` it is ``y_(m)``. With equal weights ``p_k = (k - 1/2) / m``,
-    which is definition 5 of [2]_ and ``numpy.quantile(..., method="hazen")``.
+    which is definition 5 of [2]_ and ``numpy.quantile(..., method="hazen")``. Tied values
+    share their total weight equally before the positions are computed, so the result does
+    not depend on the order of the points (and equal weights are left as they are).
 
     Parameters
     ----------
@@ -173,12 +175,14 @@ def weighted_quantile(
     flat = y.reshape(y.shape[0], -1)
     order = np.argsort(flat, axis=0, kind="stable")
     ys = np.take_along_axis(flat, order, axis=0)
-    ws = w[order]
-    positions = np.cumsum(ws, axis=0) - 0.5 * ws  # midpoint of each CDF step
     qf = np.atleast_1d(qa)
     out = np.empty((qf.size, flat.shape[1]))
     for j in range(flat.shape[1]):
-        out[:, j] = np.interp(qf, positions[:, j], ys[:, j])  # clamps outside [p_1, p_m]
+        ws = w[order[:, j]]
+        _, run, count = np.unique(ys[:, j], return_inverse=True, return_counts=True)
+        ws = (np.bincount(run, weights=ws) / count)[run]  # ties share their weight equally
+        positions = np.cumsum(ws) - 0.5 * ws  # midpoint of each CDF step
+        out[:, j] = np.interp(qf, positions, ys[:, j])  # clamps outside [p_1, p_m]
     out = out.reshape((qf.size,) + y.shape[1:])
     return out[0] if qa.ndim == 0 else out
 

@@ -413,3 +413,48 @@ def test_estimate_rejects_bad_arguments(kwargs, message):
 def test_record_for_another_qoi_is_rejected():
     with pytest.raises(ValueError, match="expected 'h'"):
         estimate_qoi([QoIValue("p0", "other", np.asarray(1.0), "ok")], [1.0], name="h")
+
+
+# --------------------------------------------------------------------------------------------
+# properties of the weighted quantile (hypothesis)
+# --------------------------------------------------------------------------------------------
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+from hypothesis.extra.numpy import arrays  # noqa: E402
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    data=st.integers(1, 30).flatmap(
+        lambda m: st.tuples(
+            arrays(np.float64, m, elements=st.floats(-1e6, 1e6)),
+            arrays(np.float64, m, elements=st.floats(1e-3, 1e3)),
+        )
+    ),
+    scale=st.floats(1e-3, 1e3),
+)
+def test_weighted_quantile_properties(data, scale):
+    # Definition-level properties (common practice for any quantile rule): non-decreasing in q,
+    # inside [min, max], unchanged by rescaling the weights or permuting the points.
+    y, w = data
+    q = np.linspace(0.0, 1.0, 11)
+    got = weighted_quantile(y, w, q)
+    assert np.all(np.diff(got) >= -1e-9 * (1 + np.abs(got[:-1])))
+    assert got[0] >= y.min() and got[-1] <= y.max()
+    np.testing.assert_allclose(weighted_quantile(y, w * scale, q), got, rtol=1e-12, atol=1e-9)
+    perm = np.random.default_rng(0).permutation(y.size)
+    np.testing.assert_allclose(weighted_quantile(y[perm], w[perm], q), got, rtol=1e-12, atol=1e-9)
+
+
+def test_weighted_quantile_ties_share_weight():
+    # y = (0, 1, 1), w = (2, 1, 2)/5: the tie at 1 carries 3/5, shared as 1.5/5 each, so the
+    # positions are (.2, .55, .85) (hand computed) whatever the order of the tied points.
+    for y, w in (([0.0, 1.0, 1.0], [2.0, 1.0, 2.0]), ([1.0, 0.0, 1.0], [2.0, 2.0, 1.0])):
+        got = weighted_quantile(y, w, [0.2, 0.3, 0.55, 0.9])
+        np.testing.assert_allclose(got, [0.0, (0.3 - 0.2) / 0.35, 1.0, 1.0], rtol=0, atol=1e-15)
+    # equal weights with ties still match numpy's Hazen rule
+    y = np.array([3.0, 1.0, 1.0, 2.0, 3.0, 3.0])
+    q = np.linspace(0, 1, 21)
+    np.testing.assert_allclose(
+        weighted_quantile(y, np.ones(6), q), np.quantile(y, q, method="hazen"), atol=1e-15
+    )
