@@ -383,3 +383,16 @@ def test_quantity_without_usable_run_still_renders(tmp_path):
     text = build_report(d, tmp_path).read_text()
     assert "head: no run gave a usable value (8 left out)." in text
     assert report_tables(d)["estimates"][-1]["mean"] is None
+
+
+def test_long_vector_is_thinned_in_html_but_complete_in_tables(tmp_path):
+    d = make_data()
+    k = 40
+    t_axis = np.arange(k, dtype=float)
+    y = np.outer(np.linspace(1.0, 2.0, M), 1.0 + 0.01 * t_axis)
+    est = estimate_qoi(y, d.selection.weights, name="h_long", units="m", bootstrap=0)
+    d.estimates = d.estimates + [est]
+    d.qoi_axes = {**d.qoi_axes, "h_long": {"name": "t", "units": "s", "values": t_axis}}
+    text = build_report(d, tmp_path).read_text()
+    assert "15 of 40 axis values shown" in text
+    assert len([r for r in report_tables(d)["estimates"] if r["quantity"] == "h_long"]) == k
