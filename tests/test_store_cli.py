@@ -262,3 +262,28 @@ def test_diff_between_revisions(two_revisions: tuple[Path, Path]) -> None:
     table = runner.invoke(app, ["diff", str(p), "1", "2"])
     assert table.exit_code == 0 and "drawdown" in table.stdout
     assert runner.invoke(app, ["diff", str(p), "1", "r0003"]).exit_code == 2
+
+
+def test_load_report_data(two_revisions: tuple[Path, Path], tmp_path: Path) -> None:
+    from winnow.tasks.store import StoreFormatError, load_report_data
+
+    p, _ = two_revisions
+    d1 = load_report_data(p, 1)
+    assert (d1.study, d1.revision, d1.chain_rows) == ("cli study", "r0001", 30)
+    assert d1.config_hash == hashlib.sha256(b"v: 1").hexdigest() and d1.config_text == "v: 1"
+    assert d1.point_run_ids == ("p000004-00000000", "p000011-00000001", "p000020-00000002")
+    assert d1.reuse_counts == {"ran": 3, "reused": 0}
+    assert [v.run_id for v in d1.qoi_values][0] == "p000004-00000000"
+    assert d1.estimates[0].name == "drawdown" and d1.provenance["flow_run_id"] == "flow-v: 1"
+    d2 = load_report_data(p, max_plot_rows=7)
+    assert d2.revision == "r0002" and d2.reuse_counts == {"ran": 1, "reused": 2}
+    with RunStore.open_read(p) as r:
+        full = r.read_chain("r0002").samples
+    assert d2.chain_samples.shape == (7, 2)
+    np.testing.assert_array_equal(d2.chain_samples[[0, -1]], full[[0, -1]])
+    damaged = tmp_path / "damaged.h5"
+    damaged.write_bytes(p.read_bytes())
+    with h5py.File(damaged, "r+") as f:
+        f["revisions/r0002/results/values/value_data"][0] = 99.0
+    with pytest.raises(StoreFormatError, match="stored results does not match"):
+        load_report_data(damaged)
