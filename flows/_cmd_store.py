@@ -222,11 +222,25 @@ def register(app: typer.Typer) -> None:
     @guarded
     def check_cmd(
         store: Annotated[Path, typer.Argument(help="Run store (HDF5 file).")],
+        as_json: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
     ) -> None:
         """Verify a run store's structure and content hashes (exit 1 when damaged)."""
         from winnow.tasks.store import check
 
         report = check(store)
+        if as_json:
+            _dump(
+                {
+                    "store": str(store),
+                    "ok": report.ok,
+                    "problems": report.problems,
+                    "revisions": report.revisions,
+                    "datasets_checked": report.datasets_checked,
+                }
+            )
+            if not report.ok:
+                raise typer.Exit(1)
+            return
         if report.ok:
             print(
                 f"{store}: intact ({len(report.revisions)} revision(s), "

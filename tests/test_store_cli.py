@@ -148,6 +148,9 @@ def test_check_exit_codes(two_revisions: tuple[Path, Path], tmp_path: Path) -> N
     assert len(lines) == len(check(damaged).problems) >= 2  # one line per problem
     assert any("/revisions/r0001/selection/weights: data do not match" in x for x in lines)
     assert any("/revisions/r0002/results/values/value_data" in x for x in lines)
+    as_json = runner.invoke(app, ["check", str(damaged), "--json"])
+    assert as_json.exit_code == 1
+    assert json.loads(as_json.stdout)["problems"] == check(damaged).problems
     missing = runner.invoke(app, ["check", str(tmp_path / "nope.h5")])
     assert missing.exit_code == 2 and "does not exist" in missing.stderr
     junk = tmp_path / "junk.h5"
