@@ -305,7 +305,9 @@ def unsafe_name(name: str) -> str:
 # writer lock
 # ------------------------------------------------------------------------------------------
 def lock_path(store: Path) -> Path:
-    return store.with_name(store.name + ".lock")
+    # through symlinks, so that every path to one store shares one lock file
+    real = store.resolve()
+    return real.with_name(real.name + ".lock")
 
 
 class WriterLock:
@@ -379,10 +381,12 @@ def commit(store: Path, apply: Callable[[h5py.File], None], *, new: bool = False
     either the old file or the new one; a leftover temp file is removed on the next open.
     With ``new=True`` the temp file starts empty (store creation).
     """
+    store = store.resolve()  # replace a symlink's target, never the symlink itself
     tmp = temp_path(store)
     try:
         if not new:
             shutil.copyfile(store, tmp)
+            shutil.copymode(store, tmp)  # keep the store's permission bits
         _hook("copied")
         # a new file tracks its free space persistently, so that space freed by rewriting a
         # section is reused by later commits instead of growing the file
@@ -402,6 +406,7 @@ def commit(store: Path, apply: Callable[[h5py.File], None], *, new: bool = False
 
 
 def stale_temps(store: Path) -> list[Path]:
+    store = store.resolve()
     return sorted(store.parent.glob(f".{glob_escape(store.name)}.tmp-*"))
 
 

@@ -264,3 +264,20 @@ def test_reader_keeps_a_consistent_snapshot_during_commits(tmp_path: Path) -> No
         np.testing.assert_array_equal(r.read_chain("r0001").samples, chain.samples)
     with RunStore.open_read(p) as r:
         assert r.revisions() == ["r0001", "r0002"]
+
+
+def test_symlinked_store_and_permissions_survive_commits(tmp_path: Path) -> None:
+    p, _ = _store_with_one_revision(tmp_path)
+    p.chmod(0o640)
+    link = tmp_path / "link.h5"
+    link.symlink_to(p)
+    with RunStore.open_for_write(link) as w:
+        # one lock for every path to the store
+        with pytest.raises(StoreBusyError):
+            RunStore.open_for_write(p)
+        w.new_revision("via link\n")
+    assert link.is_symlink() and link.resolve() == p.resolve()
+    assert (p.stat().st_mode & 0o777) == 0o640
+    with RunStore.open_read(p) as r:
+        assert r.revisions() == ["r0001", "r0002"]
+    assert check(link).ok
