@@ -18,6 +18,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import math
@@ -302,7 +303,9 @@ class DeckSpec:
 # --------------------------------------------------------------------------------------------
 # rendering
 # --------------------------------------------------------------------------------------------
+@functools.lru_cache(maxsize=16)
 def _environment(template_root: Path):
+    # Cached per template root; Jinja2's loader re-reads a template whose file changed.
     from jinja2 import FileSystemLoader, StrictUndefined
     from jinja2.sandbox import SandboxedEnvironment
 
@@ -545,7 +548,7 @@ def render_run(
         run_dir=str(run_dir),
         params=dict(numbers_),
     )
-    env = _environment(template_root)
+    env = _environment(template_root.resolve())
     rendered: dict[PurePosixPath, bytes] = {}
     for entry in decks.templates:
         name = _template_name(entry, template_root)
