@@ -114,6 +114,9 @@ class PriorSet:
         self.log_norm = np.zeros(d)  # log of the normalising constant of the truncation
         for j, p in enumerate(self.priors):
             self._set(j, _validate_prior(p))
+        self._is_uniform = self.kind == "uniform"
+        self._is_normal = (self.kind == "normal") | (self.kind == "truncnormal")
+        self._is_lognormal = self.kind == "lognormal"
         self._lower_only = np.isfinite(self.low) & ~np.isfinite(self.high)
         self._upper_only = ~np.isfinite(self.low) & np.isfinite(self.high)
         self._both = np.isfinite(self.low) & np.isfinite(self.high)
@@ -123,9 +126,13 @@ class PriorSet:
         self._idx_both = np.flatnonzero(self._both)
         self._idx_one = np.flatnonzero(self._lower_only | self._upper_only)
         self._log_width_sum = float(np.log(self._width[self._idx_both]).sum())
-        self._is_uniform = self.kind == "uniform"
-        self._is_normal = (self.kind == "normal") | (self.kind == "truncnormal")
-        self._is_lognormal = self.kind == "lognormal"
+        self._idx_gauss = np.flatnonzero(self._is_normal)
+        self._idx_lognormal = np.flatnonzero(self._is_lognormal)
+        # Constant part of the log density: normalising constants of every marginal.
+        non_uniform = ~self._is_uniform
+        self._log_const = float(
+            -self.log_norm.sum() - (np.log(self.sigma[non_uniform]) + _LOG_SQRT_2PI).sum()
+        )
 
     @property
     def d(self) -> int:
@@ -159,15 +166,19 @@ class PriorSet:
     def logpdf(self, x: npt.ArrayLike) -> np.ndarray:
         """Normalised log prior density of rows ``x``, shape (k, d) -> (k,); -inf outside."""
         x = np.atleast_2d(np.asarray(x, dtype=np.float64))
-        inside = np.all((x >= self.low) & (x <= self.high), axis=1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            lx = np.where(self._is_lognormal, np.log(np.where(x > 0, x, 1.0)), x)
-            z = (lx - self.mu) / self.sigma
-            gauss = -0.5 * z * z - np.log(self.sigma) - _LOG_SQRT_2PI
-            per = np.where(self._is_uniform, 0.0, gauss) - self.log_norm
-            per = per - np.where(self._is_lognormal, lx, 0.0)  # d log(x)/dx = 1/x
-        out = per.sum(axis=1)
-        out[~inside | ~np.isfinite(out)] = -np.inf
+        inside = ((x >= self.low) & (x <= self.high)).all(axis=1)
+        out = np.full(x.shape[0], self._log_const)
+        g = self._idx_gauss
+        if g.size:
+            z = (x[:, g] - self.mu[g]) / self.sigma[g]
+            out -= 0.5 * np.einsum("ij,ij->i", z, z)
+        ln = self._idx_lognormal
+        if ln.size:
+            xl = x[:, ln]
+            lx = np.log(np.where(xl > 0, xl, 1.0))
+            z = (lx - self.mu[ln]) / self.sigma[ln]
+            out -= 0.5 * np.einsum("ij,ij->i", z, z) + lx.sum(axis=1)  # d log(x)/dx = 1/x
+        out[~inside] = -np.inf
         return out
 
     # ---------------------------------------------------------------- transforms

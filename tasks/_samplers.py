@@ -46,7 +46,7 @@ __all__ = [
 ]
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)
 class StepContext:
     """What a move may know about the step it proposes for.
 
@@ -204,7 +204,7 @@ class AdaptiveMetropolis(Move):
         n = self.state["count"][i]
         cov = self.state["m2"][i] / np.maximum(n - 1.0, 1.0)[:, None, None]
         diag = np.einsum("kii->ki", cov)  # a writeable view of the diagonals
-        diag += self.epsilon * np.maximum(diag.mean(axis=1), 1e-300)[:, None]
+        diag += self.epsilon * np.maximum(diag.sum(axis=1) / self.d, 1e-300)[:, None]
         return cov
 
 

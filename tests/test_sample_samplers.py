@@ -1,0 +1,200 @@
+"""Samplers (tasks/_samplers.py, tasks/sampling.py): one shared contract for every move,
+and posterior moments against closed forms.
+
+Outside references:
+* 2-D correlated Gaussian target: the exact mean and covariance are the target's own
+  parameters (closed form).
+* Conjugate normal-normal model: Gelman et al., Bayesian Data Analysis, 3rd ed. (2013),
+  Sec. 2.5, Eqs. (2.11)-(2.12): posterior precision 1/tau0^2 + n/sigma^2 and mean
+  (mu0/tau0^2 + n ybar/sigma^2) / precision.
+* Linear-Gaussian regression with a Gaussian prior: Gelman et al. (2013), Sec. 14.2 (and
+  Sec. 14.8 for an informative Gaussian prior as extra data): posterior
+  N(V (X'y/sigma^2 + m0/s0^2), V), V = (X'X/sigma^2 + I/s0^2)^-1.
+Tolerances are derived from the reported Monte Carlo standard errors.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from winnow.tasks.sampling import SAMPLERS, build_log_posterior, sample
+
+MU = np.array([1.0, -2.0])
+SD = np.array([1.0, 2.0])
+RHO = 0.8
+COV = np.array([[1.0, RHO], [RHO, 1.0]]) * np.outer(SD, SD)
+PREC = np.linalg.inv(COV)
+PRIORS = [
+    {"name": "a", "dist": "normal", "mu": 0.0, "sigma": 10.0, "units": "m"},
+    {"name": "b", "dist": "uniform", "low": -20.0, "high": 20.0, "units": "s"},
+]
+N_CHAINS = {"adaptive_metropolis": 4, "ensemble": 8, "de_mcmc": 8}
+
+
+def gauss_logp(x):
+    z = x - MU
+    return -0.5 * np.einsum("ki,ij,kj->k", z, PREC, z)
+
+
+def _run(sampler, **kw):
+    args = dict(sampler=sampler, n_chains=N_CHAINS[sampler], n_draws=3000, rng=2024)
+    args.update(kw)
+    return sample(gauss_logp, PRIORS, **args)
+
+
+@pytest.fixture(scope="module", params=SAMPLERS)
+def contract_run(request):
+    return request.param, _run(request.param)
+
+
+def _short(sampler, **kw):
+    """A short run with checkpoints every 50 iterations (burn-in ends at 150)."""
+    states = {}
+
+    def keep(state):
+        states[int(state["iteration"])] = state
+
+    args = dict(n_draws=300, checkpoint=keep, checkpoint_every=50)
+    args.update(kw)
+    return _run(sampler, **args), states
+
+
+def test_contract_moments_within_mcse(contract_run):
+    sampler, chain = contract_run
+    diag = chain.diagnostics
+    assert chain.source == f"sampled:{sampler}"
+    assert chain.names == ("a", "b") and chain.units == ("m", "s")
+    assert chain.samples.shape == (N_CHAINS[sampler] * 1500, 2)
+    assert diag.burn_in == 1500 and diag.n_draws == 1500
+    for j, name in enumerate(chain.names):
+        p = diag.parameters[name]
+        # |mean - exact| < 5 MCSE (fixed seed; 5 leaves room for the MCSE's own error)
+        assert abs(p.mean - MU[j]) < 5 * p.mcse_mean, (sampler, name, p.mean, p.mcse_mean)
+        # sd: the MCSE of a variance is about var * sqrt(2 / ESS) for a Gaussian
+        # (common practice); 5 of those on the sd scale.
+        tol = 5 * SD[j] * np.sqrt(0.5 / p.ess_bulk)
+        assert abs(p.sd - SD[j]) < tol, (sampler, name, p.sd, tol)
+        assert p.rhat < 1.05
+    corr = np.corrcoef(chain.samples.T)[0, 1]
+    ess = min(p.ess_bulk for p in diag.parameters.values())
+    # sd of a sample correlation is (1 - rho^2) / sqrt(n) (common practice); 5 of those
+    assert abs(corr - RHO) < 5 * (1 - RHO**2) / np.sqrt(ess)
+    assert np.all((diag.acceptance > 0.05) & (diag.acceptance < 0.95))
+    np.testing.assert_allclose(chain.log_density, gauss_logp(chain.samples), rtol=1e-12)
+
+
+@pytest.mark.parametrize("sampler", SAMPLERS)
+def test_contract_deterministic_by_seed_and_resume_equals_uninterrupted(sampler):
+    chain, states = _short(sampler)
+    assert sorted(states) == [50, 100, 150, 200, 250]
+    again = _run(sampler, n_draws=300)
+    np.testing.assert_array_equal(again.samples, chain.samples)
+    other = _run(sampler, n_draws=300, rng=7)
+    assert not np.array_equal(other.samples, chain.samples)
+    for it in (100, 200):  # one checkpoint in the burn-in, one after it
+        resumed = _run(sampler, n_draws=300, resume=states[it], rng=999)  # rng ignored
+        np.testing.assert_array_equal(resumed.samples, chain.samples)
+        np.testing.assert_array_equal(resumed.log_density, chain.log_density)
+        np.testing.assert_array_equal(resumed.diagnostics.acceptance, chain.diagnostics.acceptance)
+        assert resumed.diagnostics.details["resumed_at"] == it
+    st = states[50]
+    for key, value in st.items():
+        assert isinstance(value, (np.ndarray, int, float, str)), key
+    with pytest.raises(ValueError, match="other settings: n_draws: checkpoint 300 vs now 400"):
+        _run(sampler, n_draws=400, resume=st)
+    with pytest.raises(ValueError, match="not a sample checkpoint"):
+        _run(sampler, resume={"iteration": 3})
+
+
+def test_conjugate_normal_normal():
+    # BDA3 Sec. 2.5, Eqs. (2.11)-(2.12)
+    rng = np.random.default_rng(1)
+    sigma, mu0, tau0, n = 2.0, 0.0, 1.5, 25
+    y = rng.normal(0.7, sigma, size=n)
+    prec = 1 / tau0**2 + n / sigma**2
+    mean_exact = (mu0 / tau0**2 + y.sum() / sigma**2) / prec
+    lp = build_log_posterior(
+        [{"name": "theta", "dist": "normal", "mu": mu0, "sigma": tau0}],
+        forward=lambda th, inp: np.repeat(th[..., :1], n, axis=-1),
+        inputs={},
+        observations=y,
+        sigma=sigma,
+    )
+    chain = sample(lp, n_chains=4, n_draws=4000, rng=3)
+    p = chain.diagnostics.parameters["theta"]
+    assert abs(p.mean - mean_exact) < 4 * p.mcse_mean
+    sd_exact = prec**-0.5
+    assert abs(p.sd - sd_exact) < 4 * sd_exact * np.sqrt(0.5 / p.ess_bulk)
+    assert chain.diagnostics.passed, chain.diagnostics.messages
+
+
+@pytest.mark.slow
+def test_linear_gaussian_regression():
+    # BDA3 Sec. 14.2 with a Gaussian prior N(0, s0^2 I) (Sec. 14.8): closed-form posterior.
+    rng = np.random.default_rng(8)
+    n, sigma, s0 = 30, 0.5, 10.0
+    t = np.linspace(0, 3, n)
+    X = np.c_[np.ones(n), t, t**2]
+    y = X @ np.array([1.0, -0.5, 0.3]) + sigma * rng.normal(size=n)
+    V = np.linalg.inv(X.T @ X / sigma**2 + np.eye(3) / s0**2)
+    m = V @ (X.T @ y / sigma**2)
+    names = ["b0", "b1", "b2"]
+    lp = build_log_posterior(
+        [{"name": k, "dist": "normal", "mu": 0.0, "sigma": s0} for k in names],
+        forward=lambda th, inp: np.atleast_2d(th) @ inp["X"].T,
+        inputs={"X": X},
+        observations=y,
+        sigma=sigma,
+    )
+    assert lp.vectorised
+    chain = sample(lp, n_chains=4, n_draws=6000, rng=11)
+    diag = chain.diagnostics
+    for j, k in enumerate(names):
+        p = diag.parameters[k]
+        assert abs(p.mean - m[j]) < 4 * p.mcse_mean, (k, p.mean, m[j], p.mcse_mean)
+        sd = np.sqrt(V[j, j])
+        assert abs(p.sd - sd) < 4 * sd * np.sqrt(0.5 / p.ess_bulk)
+    c = np.corrcoef(chain.samples.T)[0, 2]
+    c_exact = V[0, 2] / np.sqrt(V[0, 0] * V[2, 2])
+    ess = min(p.ess_bulk for p in diag.parameters.values())
+    assert abs(c - c_exact) < 5 * (1 - c_exact**2) / np.sqrt(ess)
+
+
+def test_progress_and_thin():
+    calls = []
+    chain = sample(
+        gauss_logp,
+        PRIORS,
+        n_chains=2,
+        n_draws=400,
+        thin=4,
+        rng=1,
+        progress=lambda done, total, what: calls.append((done, total, what)),
+        thresholds={"ess_bulk_min": 1, "ess_tail_min": 1, "rhat_max": 2.0},
+    )
+    assert calls[-1] == (400, 400, "sampling (adaptive_metropolis)")
+    assert len(calls) == 100 and [c[0] for c in calls] == sorted(c[0] for c in calls)
+    assert chain.diagnostics.n_draws == 50  # (400 - 200) / 4
+    assert "every 4th draw" in chain.diagnostics.burn_in_rule
+    np.testing.assert_array_equal(chain.draw_index[:50], np.arange(50))
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "pattern"),
+    [
+        ({"sampler": "hmc"}, "adaptive_metropolis, ensemble, de_mcmc"),
+        ({"sampler": "ensemble", "n_chains": 3}, r"n_chains >= max\(4, 2 d\) = 4"),
+        ({"n_draws": 9, "thin": 3}, "at least 4 are needed"),
+        ({"burn_in": 5000}, "between 0 and"),
+        ({"thresholds": {"ess": 3}}, "unknown key 'ess'"),
+    ],
+)
+def test_bad_settings(kwargs, pattern):
+    with pytest.raises(ValueError, match=pattern):
+        sample(gauss_logp, PRIORS, **{"n_draws": 100, **kwargs})
+
+
+def test_plain_callable_wrong_shape_is_reported():
+    with pytest.raises(ValueError, match=r"returned shape \(\) for 4 rows"):
+        sample(lambda x: 0.0, PRIORS, n_chains=4, n_draws=50, rng=0)
