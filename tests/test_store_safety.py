@@ -152,8 +152,10 @@ def test_flipped_byte_in_raw_file_is_detected_and_named(tmp_path: Path) -> None:
     p, _ = _store_with_one_revision(tmp_path)
     with h5py.File(p, "r") as f:
         ds = f["revisions/r0001/chain/log_density"]
+        # h5py DatasetID.get_offset(): byte offset of a contiguous dataset's raw data in the
+        # file (None for chunked/compact storage); the store writes contiguous datasets
         offset = ds.id.get_offset()
-        assert offset is not None  # contiguous storage
+        assert offset is not None
     with open(p, "r+b") as fh:
         fh.seek(offset + 5)
         b = fh.read(1)
@@ -161,6 +163,7 @@ def test_flipped_byte_in_raw_file_is_detected_and_named(tmp_path: Path) -> None:
         fh.write(bytes([b[0] ^ 0x01]))
     report = check(p)
     assert not report.ok
+    # float64 data: one flipped bit changes one value, so exactly this dataset is named
     named = [x for x in report.problems if x.startswith("/revisions/r0001/chain/log_density:")]
     assert len(named) == 1, report.problems
     assert not any("chain/samples" in x for x in report.problems)
