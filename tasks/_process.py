@@ -19,8 +19,9 @@ import numbers
 import os
 import signal
 import subprocess
+import threading
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -345,6 +346,27 @@ def _reap_strays(pgid: int) -> None:
         pass
 
 
+# Solver processes running now, by the thread waiting on them (see kill_running).
+_LIVE: dict[int, subprocess.Popen] = {}
+_LIVE_LOCK = threading.Lock()
+
+
+def kill_running(thread_idents: Iterable[int]) -> int:
+    """Kill the process groups of solvers waited on by the given threads; return how many.
+
+    Used by a runner whose dispatch is interrupted (Ctrl-C, cancelled flow), so no solver
+    keeps running behind it. The interrupted runs journal a failure and are run again later.
+    """
+    with _LIVE_LOCK:
+        procs = [_LIVE[i] for i in thread_idents if i in _LIVE]
+    for proc in procs:
+        try:
+            os.killpg(proc.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+    return len(procs)
+
+
 def _rotate_logs(run_dir: Path, number: int) -> None:
     """Keep the logs of the previous attempt as ``winnow-stdout.attempt<k>.txt``."""
     for name in (STDOUT_NAME, STDERR_NAME):
@@ -396,6 +418,9 @@ def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attem
         msg = f"could not start {spec.argv[0]!r}: {exc}"
         return Attempt(number, spec.argv, started, time.time(), None, False, "", "", msg), "failed"
     timed_out = False
+    ident = threading.get_ident()
+    with _LIVE_LOCK:
+        _LIVE[ident] = proc
     try:
         status: int | None = proc.wait(timeout=options.timeout)
     except subprocess.TimeoutExpired:
@@ -406,6 +431,9 @@ def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attem
         # Interrupted dispatcher: never leave the solver group running behind us.
         _kill_group(proc, 0.0)
         raise
+    finally:
+        with _LIVE_LOCK:
+            _LIVE.pop(ident, None)
     _reap_strays(proc.pid)
     ended = time.time()
     attempt = Attempt(

@@ -21,6 +21,7 @@ import os
 import re
 import shlex
 import subprocess
+import threading
 import time
 import uuid
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -35,6 +36,7 @@ from winnow.tasks._process import (
     check_outputs,
     execute_run,
     failed_outcome,
+    kill_running,
     read_tail,
 )
 from winnow.tasks.records import Attempt, RunOutcome, RunSpec
@@ -142,17 +144,29 @@ class LocalRunner(Runner):
         return f"LocalRunner(concurrency={self.concurrency})"
 
     def _iter_outcomes(self, specs, options):
+        threads: set[int] = set()
+
+        def call(spec: RunSpec) -> RunOutcome:
+            threads.add(threading.get_ident())
+            return execute_run(spec, options)
+
         with ThreadPoolExecutor(
             max_workers=min(self.concurrency, len(specs)), thread_name_prefix="winnow-run"
         ) as pool:
-            futures = {pool.submit(execute_run, spec, options): spec for spec in specs}
+            futures = {pool.submit(call, spec): spec for spec in specs}
+            finished = False
             try:
                 for fut in as_completed(futures):
                     exc = fut.exception()
                     yield futures[fut], (exc if exc is not None else fut.result())
+                finished = True
             finally:
                 for fut in futures:
                     fut.cancel()
+                if not finished:
+                    # Interrupted (Ctrl-C, generator closed): stop the solvers still running
+                    # instead of waiting hours for them in the pool's shutdown.
+                    kill_running(threads)
 
 
 class DaskRunner(Runner):

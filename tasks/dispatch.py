@@ -28,7 +28,6 @@ Examples
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -198,7 +197,8 @@ def dispatch(
         Called with each outcome as it is known (reused and resumed ones first, then each run
         as it finishes), in the calling thread.
     concurrency : int, optional
-        Runs at once when ``runner`` is a config value; default the number of CPUs.
+        Runs at once when ``runner`` is a config value; default 1 (costly solvers usually
+        use every core themselves).
     timeout, retries, retry_delay, env, cwd, outputs, tail_bytes, check_output, kill_grace
         As in :func:`run_one`.
     resume : bool
@@ -225,7 +225,7 @@ def dispatch(
     if on_outcome is not None and not callable(on_outcome):
         raise TypeError(f"on_outcome must be callable, got {on_outcome!r}")
     if not isinstance(runner, Runner):
-        runner = make_runner(runner, concurrency=concurrency or os.cpu_count() or 1)
+        runner = make_runner(runner, concurrency=1 if concurrency is None else concurrency)
     done, todo = plan_dispatch(specs, known_successes=known_successes, resume=resume)
     if on_outcome is not None:
         for spec in specs:

@@ -130,6 +130,9 @@ def test_failure_states(tpl, tmp_path):
     gone = run_one(make_spec(tpl, root, "delete_folder", 3), outputs=["result.txt"])
     assert gone.state == "output_missing" and "deleted" in gone.message
 
+    rewritten = run_one(make_spec(tpl, root, "rewrite_manifest", 5), outputs=["result.txt"])
+    assert rewritten.state == "output_missing" and "rewritten" in rewritten.message
+
     spec = make_spec(tpl, root, "succeed", 4)
     cannot = run_one(
         type(spec)(**{**spec.__dict__, "argv": ("/nonexistent/solver", "x")}), retries=3
@@ -214,3 +217,25 @@ def test_dispatch_validates_before_running(tpl, tmp_path):
     with pytest.raises(ValueError, match="valid"):
         dispatch([spec], runner="cloud")
     assert not (spec.run_dir / "winnow-stdout.txt").exists()
+
+
+def test_interrupted_local_runner_kills_running_solvers(tpl, tmp_path):
+    from winnow.tasks.dispatch import RunOptions
+
+    root = tmp_path / "runs"
+    sleeper = make_spec(tpl, root, "sleep", 0)
+    quick = make_spec(tpl, root, "succeed", 1)
+    gen = LocalRunner(2)._iter_outcomes([sleeper, quick], RunOptions(timeout=600))
+    spec, outcome = next(gen)
+    assert spec == quick and outcome.state == "succeeded"
+    deadline = time.monotonic() + 30
+    while not (sleeper.run_dir / "child.pid").exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    child = int((sleeper.run_dir / "child.pid").read_text())
+    gen.close()  # what Ctrl-C in the dispatcher does to the generator
+    # The solver group is killed at once (not after the 600 s timeout) and journalled failed.
+    assert read_outcome(sleeper.run_dir).state == "failed"
+    deadline = time.monotonic() + 10
+    while not _gone(child) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert _gone(child)

@@ -8,7 +8,8 @@ Modes: ``succeed``; ``fail`` (exit 1); ``sleep`` (spawn a grandchild that sleeps
 pid in ``child.pid``, then sleep past any timeout); ``no_output`` (exit 0, write nothing);
 ``nan`` (write ``value = nan``); ``spam`` (5 MB on stdout and stderr, then succeed);
 ``flaky`` (fail on the first attempt, succeed on the second, via a marker file);
-``delete_folder`` (remove its own run folder, exit 0); ``env`` (write $WINNOW_TEST_VALUE).
+``delete_folder`` (remove its own run folder, exit 0); ``rewrite_manifest`` (overwrite the
+run folder's manifest); ``env`` (write $WINNOW_TEST_VALUE).
 """
 
 import os
@@ -70,6 +71,13 @@ def main() -> int:
         return 0
     if mode == "delete_folder":
         shutil.rmtree(os.path.dirname(os.path.abspath(deck)))
+        return 0
+    if mode == "rewrite_manifest":
+        write(repr(2 * x))
+        with open(
+            os.path.join(os.path.dirname(os.path.abspath(deck)), "winnow-manifest.json"), "w"
+        ) as fh:
+            fh.write("{}")
         return 0
     if mode == "env":
         write(os.environ.get("WINNOW_TEST_VALUE", "unset"))
