@@ -1,0 +1,858 @@
+"""Thin a posterior chain to a few weighted points by minimising MMD (the thin stage).
+
+From a chain of ``N`` rows (``N`` up to 10^7, dimension up to 50) choose ``m`` distinct rows and
+weights whose weighted empirical distribution is close to the whole chain in maximum mean
+discrepancy (MMD, Gretton et al. 2012), without gradients of the posterior and without an
+``N x N`` kernel matrix:
+
+1. rows with NaN/inf are dropped (counted) or refused; each parameter is standardised (mixed
+   units); repeated rows (Metropolis rejections) are merged, their multiplicity kept as weight;
+2. the kernel bandwidth defaults to the median pairwise distance of a random subsample
+   (Gretton et al. 2012, Section 8);
+3. the kernel is replaced by random Fourier features (Rahimi & Recht 2007; orthogonal, Yu et
+   al. 2016; quasi-Monte Carlo, Avron et al. 2016); the mean embedding of the whole chain is
+   streamed in chunks; ``n_features="auto"`` doubles the feature count until the MMD estimates
+   of independent feature draws agree to ``features_tol``;
+4. a selector (greedy / kernel herding, Chen, Welling & Smola 2010, Riabiz et al. 2022; swap
+   local search; genetic algorithm; random and stride baselines) picks the rows from a pool of
+   candidate distinct rows;
+5. weights are uniform or the exact simplex-constrained minimiser of the feature-space MMD;
+6. the result is checked with the exact-kernel MMD against the chain (chunked; on a stated
+   random subsample above ``exact_max_rows`` rows).
+
+References
+----------
+.. [1] Rahimi, A. and Recht, B. (2007). Random features for large-scale kernel machines.
+   NeurIPS 20.
+.. [2] Yu, F. X. et al. (2016). Orthogonal random features. NeurIPS 29.
+.. [3] Avron, H., Sindhwani, V., Yang, J. and Mahoney, M. W. (2016). Quasi-Monte Carlo feature
+   maps for shift-invariant kernels. JMLR 17(120).
+.. [4] Chen, Y., Welling, M. and Smola, A. (2010). Super-samples from kernel herding. UAI.
+.. [5] Gretton, A. et al. (2012). A kernel two-sample test. JMLR 13, 723-773.
+.. [6] Riabiz, M. et al. (2022). Optimal thinning of MCMC output. JRSS-B 84(4), 1059-1081.
+.. [7] Rasmussen, C. E. and Williams, C. K. I. (2006). Gaussian Processes for Machine
+   Learning. MIT Press.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+import numpy.typing as npt
+
+from ._features import (
+    FEATURE_MAPS,
+    FeatureMap,
+    draw_feature_map,
+    features_of_rows,
+    mean_embedding,
+)
+from ._kernels import KERNELS, get_kernel, median_heuristic
+from ._mmd import ExactMMD, mmd_exact
+from ._selectors import SELECTORS, GreedyState, Problem, Selector, get_selector
+from ._weights import feature_mmd, optimal_weights
+from .records import Chain, Selection
+
+__all__ = [
+    "FEATURE_MAPS",
+    "KERNELS",
+    "SELECTORS",
+    "Selector",
+    "disjoint",
+    "extend",
+    "median_heuristic",
+    "mmd_exact",
+    "optimal_weights",
+    "replace",
+    "thin",
+]
+
+Progress = Callable[[int, int, str], None]
+WeightsRule = Literal["simplex", "uniform"]
+NonFinite = Literal["drop", "raise"]
+
+_WEIGHTS_RULES = ("simplex", "uniform")
+_NONFINITE = ("drop", "raise")
+_MEDIAN_ROWS = 2000  # rows of the median-heuristic subsample
+_AUTO_START, _AUTO_MAX, _AUTO_DRAWS = 64, 4096, 3
+_AUTO_PILOT, _AUTO_MAX_M = 2000, 400  # pilot chain rows (at least), largest pilot budget
+_FEATURE_BYTES = 512 * 2**20  # cap on the candidate pool's feature matrix
+# independent random streams: bandwidth, feature map, pool, auto-features, exact MMD, selector
+_STREAMS = 6
+
+
+# ============================================================================ validation
+def _validate_samples(samples: Any) -> np.ndarray:
+    if isinstance(samples, Chain):
+        samples = samples.samples
+    try:
+        x = np.asarray(samples, dtype=np.float64)
+    except (ValueError, TypeError) as exc:
+        raise ValueError(
+            f"samples must be a rectangular 2-D array of numbers (n, d); got a ragged or "
+            f"non-numeric input ({exc})"
+        ) from None
+    if x.ndim != 2:
+        raise ValueError(f"samples must be a 2-D array (n, d), got shape {x.shape}")
+    if x.shape[0] == 0 or x.shape[1] == 0:
+        raise ValueError(f"samples is empty: shape {x.shape}")
+    return x
+
+
+def _validate_int(name: str, value: Any, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int | np.integer):
+        raise TypeError(f"{name} must be an integer, got {value!r}")
+    if value < low:
+        raise ValueError(f"{name} must be >= {low}, got {value!r}")
+    return int(value)
+
+
+def _validate_choice(name: str, value: Any, choices: Sequence[str]) -> str:
+    if not isinstance(value, str) or value not in choices:
+        raise ValueError(f"{name} must be one of {sorted(choices)}, got {value!r}")
+    return value
+
+
+def _validate_bandwidth(value: Any) -> float | None:
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int | float | np.number):
+        raise TypeError(f"bandwidth must be a positive number or None, got {value!r}")
+    if not (np.isfinite(value) and value > 0):
+        raise ValueError(f"bandwidth must be finite and > 0, got {value!r}")
+    return float(value)
+
+
+def _validate_n_features(value: Any) -> int | None:
+    if isinstance(value, str):
+        if value != "auto":
+            raise ValueError(f"n_features must be 'auto' or an integer >= 1, got {value!r}")
+        return None
+    return _validate_int("n_features", value, 1)
+
+
+def _rng_and_seed(rng: Any) -> tuple[list[np.random.Generator], int | None]:
+    seed = int(rng) if isinstance(rng, int | np.integer) and not isinstance(rng, bool) else None
+    gen = np.random.default_rng(rng)
+    return gen.spawn(_STREAMS), seed
+
+
+# ============================================================================ preparation
+@dataclass
+class _Prepared:
+    x: np.ndarray  # all rows as given
+    finite_rows: np.ndarray | None  # positions of finite rows (None: all finite)
+    first: np.ndarray  # (n_distinct,) row (as given) of each distinct value's first occurrence
+    counts: np.ndarray  # (n_distinct,) multiplicities
+    inverse: np.ndarray  # (n_finite,) distinct id of each finite row, in order
+    mean: np.ndarray
+    scale: np.ndarray
+    n_dropped: int
+
+    @property
+    def n_finite(self) -> int:
+        return int(self.inverse.size)
+
+    @property
+    def n_distinct(self) -> int:
+        return int(self.first.size)
+
+    @property
+    def rows(self) -> np.ndarray | None:
+        """Rows of ``x`` to embed (None when every row is finite and distinct, no copy)."""
+        if self.first.size == self.x.shape[0]:
+            return None
+        return self.first
+
+    def ids_of_rows(self, rows: np.ndarray, name: str) -> np.ndarray:
+        """Distinct ids of rows given as indices into the input."""
+        rows = np.asarray(rows, dtype=np.int64)
+        if np.any(rows < 0) or np.any(rows >= self.x.shape[0]):
+            raise ValueError(f"{name} has row indices outside 0..{self.x.shape[0] - 1}")
+        if self.finite_rows is None:
+            return self.inverse[rows]
+        pos = np.searchsorted(self.finite_rows, rows)
+        pos = np.minimum(pos, self.finite_rows.size - 1)
+        if np.any(self.finite_rows[pos] != rows):
+            raise ValueError(f"{name} refers to rows with NaN or inf values")
+        return self.inverse[pos]
+
+    def standardised(self, ids: np.ndarray) -> np.ndarray:
+        return (self.x[self.first[ids]] - self.mean) / self.scale
+
+
+def _hash_rows(x: np.ndarray, rows: np.ndarray | None, chunk: int) -> np.ndarray:
+    """64-bit hash of each row's bit pattern (fixed odd multipliers, wrapping sums)."""
+    d = x.shape[1]
+    mult = (np.arange(1, d + 1, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)) | np.uint64(1)
+    n = x.shape[0] if rows is None else rows.size
+    out = np.empty(n, dtype=np.uint64)
+    for a in range(0, n, chunk):
+        b = min(n, a + chunk)
+        part = (x[a:b] if rows is None else x[rows[a:b]]) + 0.0  # -0.0 -> 0.0
+        bits = part.view(np.uint64)
+        bits = (bits ^ (bits >> np.uint64(29))) * mult
+        out[a:b] = bits.sum(axis=1, dtype=np.uint64)
+    return out
+
+
+def _dedup(x: np.ndarray, rows: np.ndarray | None, chunk: int):
+    """Distinct rows in order of first occurrence: (first positions, counts, inverse)."""
+    h = _hash_rows(x, rows, chunk)
+    _, first, inverse, counts = np.unique(
+        h, return_index=True, return_inverse=True, return_counts=True
+    )
+    n = h.size
+    same = True
+    for a in range(0, n, chunk):  # hashes can collide: check every row against its group's
+        b = min(n, a + chunk)
+        src = np.arange(a, b) if rows is None else rows[a:b]
+        ref = first[inverse[a:b]]
+        ref = ref if rows is None else rows[ref]
+        if not np.array_equal(x[src], x[ref]):
+            same = False
+            break
+    if not same:  # exact, slower fallback
+        sub = x if rows is None else x[rows]
+        _, first, inverse, counts = np.unique(
+            sub, axis=0, return_index=True, return_inverse=True, return_counts=True
+        )
+    order = np.argsort(first, kind="stable")
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    return first[order], counts[order].astype(np.int64), rank[inverse.ravel()].astype(np.int64)
+
+
+def _prepare(x: np.ndarray, nonfinite: str, standardise: bool, chunk: int) -> _Prepared:
+    finite = np.isfinite(x).all(axis=1)
+    n_bad = int(x.shape[0] - np.count_nonzero(finite))
+    if n_bad and nonfinite == "raise":
+        raise ValueError(
+            f"samples has {n_bad} row(s) with NaN or inf values (nonfinite='raise'); "
+            f"first at row {int(np.flatnonzero(~finite)[0])}"
+        )
+    finite_rows = None if n_bad == 0 else np.flatnonzero(finite)
+    if finite_rows is not None and finite_rows.size == 0:
+        raise ValueError("samples has no row with all values finite")
+    first, counts, inverse = _dedup(x, finite_rows, chunk)
+    if finite_rows is not None:
+        first = finite_rows[first]
+    d = x.shape[1]
+    if standardise:
+        # two chunked passes over the finite rows, float64 sums
+        n = inverse.size
+        total = np.zeros(d)
+        for a in range(0, n, chunk):
+            b = min(n, a + chunk)
+            total += (x[a:b] if finite_rows is None else x[finite_rows[a:b]]).sum(axis=0)
+        mean = total / n
+        sq = np.zeros(d)
+        for a in range(0, n, chunk):
+            b = min(n, a + chunk)
+            part = (x[a:b] if finite_rows is None else x[finite_rows[a:b]]) - mean
+            sq += np.einsum("ij,ij->j", part, part)
+        scale = np.sqrt(sq / n)
+        scale[~(np.isfinite(scale) & (scale > 0))] = 1.0  # constant column: leave as is
+    else:
+        mean, scale = np.zeros(d), np.ones(d)
+    return _Prepared(x, finite_rows, first, counts, inverse, mean, scale, n_bad)
+
+
+def _weighted_sample(
+    ids: np.ndarray, counts: np.ndarray, k: int, rng: np.random.Generator
+) -> np.ndarray:
+    """``k`` of ``ids`` without replacement, chosen in proportion to ``counts``
+    (Efraimidis & Spirakis 2006 keys ``log(u) / w``)."""
+    if k >= ids.size:
+        return ids.copy()
+    keys = np.log(rng.random(ids.size)) / counts[ids]
+    return np.sort(ids[np.argpartition(-keys, k - 1)[:k]])
+
+
+# ============================================================================ the engine
+@dataclass
+class _Settings:
+    kernel: str
+    bandwidth: float | None
+    method: str
+    weights: str
+    feature_map: str
+    n_features: int | None
+    nonfinite: str
+    standardise: bool
+    exact_max_rows: int
+    chunk_size: int | None
+    n_candidates: int | None
+    features_tol: float
+    precision: str
+    method_options: dict[str, Any]
+
+
+def _chunk_rows(chunk_size: int | None, width: int) -> int:
+    if chunk_size is not None:
+        return chunk_size
+    return int(max(256, 2**22 // max(width, 1)))  # about 16 MB of float32 features
+
+
+def _auto_features(
+    prep: _Prepared,
+    kern,
+    bandwidth: float,
+    s: _Settings,
+    m: int,
+    dtype,
+    rng: np.random.Generator,
+    progress: Progress | None,
+) -> tuple[int, list[dict[str, Any]]]:
+    """Double the number of features until the honest MMD of a pilot selection is stable.
+
+    A pilot of ``max(2000, 10 m)`` chain rows (at most 10000; uniform, without replacement) is
+    thinned to ``min(m, pilot distinct rows / 10, 400)`` points with greedy selection and
+    the chosen weights under ``_AUTO_DRAWS`` independent feature draws; each draw's selection is
+    judged by the *other* draws too. Doubling stops at the first ``D`` where the draws agree:
+    the mean relative gap between a selection's own MMD estimate and the other draws'
+    estimates is at most ``features_tol`` (or at the memory / ``_AUTO_MAX`` cap). The gap
+    measures both the noise of the estimate and how much the optimiser fitted that noise.
+    """
+    n_pilot = min(prep.n_finite, max(_AUTO_PILOT, 10 * m), 5 * _AUTO_PILOT)
+    pick = np.sort(rng.choice(prep.n_finite, size=n_pilot, replace=False))
+    ids, cnt = np.unique(prep.inverse[pick], return_counts=True)
+    z_rows = prep.first[ids]
+    m_pilot = max(1, min(m, ids.size // 10, _AUTO_MAX_M))
+    d = prep.x.shape[1]
+    cap = max(_AUTO_START, _FEATURE_BYTES // (ids.size * 2 * np.dtype(dtype).itemsize))
+    levels = []
+    n_feat = _AUTO_START
+    while n_feat <= min(_AUTO_MAX, cap):
+        levels.append(n_feat)
+        n_feat *= 2
+    history: list[dict[str, Any]] = []
+    chosen = levels[-1]
+    for li, n_feat in enumerate(levels):
+        phis, mus, sels = [], [], []
+        for _ in range(_AUTO_DRAWS):
+            fmap = draw_feature_map(
+                kern, d, n_feat, s.feature_map, bandwidth, prep.mean, prep.scale, rng, dtype
+            )
+            phi = features_of_rows(fmap, prep.x, z_rows, chunk_size=_chunk_rows(None, 2 * n_feat))
+            mu = (cnt.astype(np.float64) @ phi) / cnt.sum()
+            problem = Problem(
+                phi=phi,
+                mu=mu,
+                pool=np.arange(ids.size),
+                counts=cnt,
+                inverse=np.arange(ids.size),
+                allowed=np.ones(ids.size, bool),
+                fixed=np.zeros(0, np.int64),
+                weights_rule=s.weights,
+                features_of=phi.__getitem__,
+            )
+            pos = np.asarray(
+                GreedyState(problem, problem.fixed_pos, problem.pool_free).run(m_pilot)
+            )
+            w, own = problem.weigh(phi[pos])
+            phis.append(phi)
+            mus.append(mu)
+            sels.append((pos, w, own))
+        cross = []
+        for r, (pos, w, _) in enumerate(sels):
+            judged = [feature_mmd(phis[q][pos], mus[q], w) for q in range(_AUTO_DRAWS) if q != r]
+            cross.append(float(np.mean(judged)))
+        honest = float(np.mean(cross))
+        own = np.array([v[2] for v in sels])
+        # how far each draw's own estimate is from the other draws' verdict: feature noise
+        # plus the optimiser fitting that noise; small means the estimate is stable
+        gap = float(np.mean(np.abs(np.asarray(cross) - own)) / max(honest, 1e-300))
+        entry = {
+            "n_features": n_feat,
+            "mmd_own": own.tolist(),
+            "mmd_cross": cross,
+            "mmd_cross_mean": honest,
+            "gap": gap,
+            "spread": float((max(cross) - min(cross)) / honest) if honest > 0 else 0.0,
+        }
+        history.append(entry)
+        if progress is not None:
+            progress(li + 1, len(levels), "auto features")
+        if gap <= s.features_tol:
+            chosen = n_feat
+            break
+    return chosen, history
+
+
+def _run(
+    x: np.ndarray,
+    m: int,
+    s: _Settings,
+    rng: Any,
+    progress: Progress | None,
+    *,
+    fixed_rows: np.ndarray | None = None,
+    excluded_rows: np.ndarray | None = None,
+    purpose: str = "thin",
+) -> Selection:
+    t_start = time.perf_counter()
+    timings: dict[str, float] = {}
+
+    def lap(name: str, t0: float) -> float:
+        now = time.perf_counter()
+        timings[name] = now - t0
+        return now
+
+    streams, seed = _rng_and_seed(rng)
+    kern = get_kernel(s.kernel)
+    selector = get_selector(s.method, **s.method_options)
+    dtype = np.float32 if s.precision == "single" else np.float64
+    chunk0 = _chunk_rows(s.chunk_size, 64)
+    prep = _prepare(x, s.nonfinite, s.standardise, chunk0)
+    t = lap("prepare", t_start)
+
+    fixed = np.zeros(0, np.int64)
+    if fixed_rows is not None and fixed_rows.size:
+        fixed = prep.ids_of_rows(fixed_rows, "selection")
+        _, keep = np.unique(fixed, return_index=True)
+        fixed = fixed[np.sort(keep)]
+    allowed = np.ones(prep.n_distinct, dtype=bool)
+    if excluded_rows is not None and excluded_rows.size:
+        allowed[prep.ids_of_rows(excluded_rows, "excluded rows")] = False
+    allowed[fixed] = True
+    n_avail = int(np.count_nonzero(allowed))
+    if m > n_avail:
+        raise ValueError(
+            f"budget must be <= the number of distinct usable rows ({n_avail}), got {m}"
+        )
+    if fixed.size > m:
+        raise ValueError(f"budget ({m}) is smaller than the rows to keep ({fixed.size})")
+
+    # bandwidth ---------------------------------------------------------------------------
+    bw_info: dict[str, Any] = {}
+    if s.bandwidth is None:
+        # subsample of finite chain rows (multiplicity counted), standardised
+        take = streams[0].choice(
+            prep.n_finite, size=min(prep.n_finite, _MEDIAN_ROWS), replace=False
+        )
+        z = prep.standardised(prep.inverse[np.sort(take)])
+        bandwidth, used = median_heuristic(z, norm=kern.norm, max_rows=_MEDIAN_ROWS)
+        bw_info = {"bandwidth_rule": "median heuristic", "bandwidth_rows": used}
+        if not bandwidth > 0:
+            bandwidth = 1.0
+            bw_info["bandwidth_rule"] = "median heuristic was 0 (all rows equal); used 1.0"
+    else:
+        bandwidth = s.bandwidth
+        bw_info = {"bandwidth_rule": "given"}
+    t = lap("bandwidth", t)
+
+    # number of features -------------------------------------------------------------------
+    auto_history: list[dict[str, Any]] | None = None
+    if s.n_features is None:
+        n_feat, auto_history = _auto_features(
+            prep, kern, bandwidth, s, m, dtype, streams[3], progress
+        )
+    else:
+        n_feat = s.n_features
+    t = lap("auto_features", t)
+
+    d = x.shape[1]
+    fmap: FeatureMap = draw_feature_map(
+        kern, d, n_feat, s.feature_map, bandwidth, prep.mean, prep.scale, streams[1], dtype
+    )
+    chunk = _chunk_rows(s.chunk_size, fmap.width)
+    mu = mean_embedding(fmap, prep.x, prep.rows, prep.counts, chunk_size=chunk, progress=progress)
+    t = lap("mean_embedding", t)
+
+    # candidate pool ---------------------------------------------------------------------------
+    free_ids = np.flatnonzero(allowed & ~np.isin(np.arange(prep.n_distinct), fixed))
+    if s.n_candidates is None:
+        n_pool = max(10_000, 50 * m)
+        n_pool = min(n_pool, max(m, _FEATURE_BYTES // (fmap.width * np.dtype(dtype).itemsize)))
+    else:
+        n_pool = s.n_candidates
+    n_pool = max(n_pool, m - fixed.size)
+    pool = np.union1d(fixed, _weighted_sample(free_ids, prep.counts, n_pool, streams[2]))
+    phi_pool = features_of_rows(fmap, prep.x, prep.first[pool], chunk_size=chunk)
+    t = lap("pool_features", t)
+
+    def features_of(ids: np.ndarray) -> np.ndarray:
+        return features_of_rows(fmap, prep.x, prep.first[np.asarray(ids)], chunk_size=chunk)
+
+    problem = Problem(
+        phi=phi_pool,
+        mu=mu,
+        pool=pool,
+        counts=prep.counts,
+        inverse=prep.inverse,
+        allowed=allowed,
+        fixed=fixed,
+        weights_rule=s.weights,
+        features_of=features_of,
+    )
+    result = selector.select(problem, m, streams[5], progress)
+    ids = result.ids
+    t = lap("select", t)
+
+    pos_in_pool = np.searchsorted(pool, ids)
+    in_pool = (pos_in_pool < pool.size) & (pool[np.minimum(pos_in_pool, pool.size - 1)] == ids)
+    phi_s = np.empty((m, fmap.width), dtype=np.float64)
+    if np.any(in_pool):
+        phi_s[in_pool] = phi_pool[pos_in_pool[in_pool]]
+    if not np.all(in_pool):
+        phi_s[~in_pool] = features_of(ids[~in_pool])
+    w, mmd_feat = problem.weigh(phi_s)
+    t = lap("weights", t)
+
+    # exact validation -----------------------------------------------------------------------
+    if s.exact_max_rows > 0:
+        if prep.n_finite <= s.exact_max_rows:
+            target_ids, target_w = np.arange(prep.n_distinct), prep.counts.astype(np.float64)
+            exact_rule = "all rows"
+        else:
+            take = streams[4].choice(prep.n_finite, size=s.exact_max_rows, replace=False)
+            target_ids, cnt = np.unique(prep.inverse[take], return_counts=True)
+            target_w = cnt.astype(np.float64)
+            exact_rule = f"uniform random subsample of {s.exact_max_rows} rows"
+        exact = ExactMMD(
+            prep.standardised(target_ids), target_w, kern, bandwidth, progress=progress
+        )
+        mmd_ex = exact(prep.standardised(ids), w)
+        exact_rows = int(min(prep.n_finite, s.exact_max_rows))
+    else:
+        mmd_ex, exact_rows, exact_rule = float("nan"), 0, "skipped (exact_max_rows=0)"
+    t = lap("exact_mmd", t)
+    timings["total"] = time.perf_counter() - t_start
+
+    indices = prep.first[ids].astype(np.int64)
+    population = None
+    if result.population is not None:
+        population = [(prep.first[p].astype(np.int64), float(v)) for p, v in result.population]
+    report: dict[str, Any] = {
+        "purpose": purpose,
+        "n_rows": int(x.shape[0]),
+        "n_nonfinite_dropped": prep.n_dropped,
+        "n_finite": prep.n_finite,
+        "n_distinct": prep.n_distinct,
+        "standardise": s.standardise,
+        "standardisation_mean": prep.mean.tolist(),
+        "standardisation_scale": prep.scale.tolist(),
+        **bw_info,
+        "n_features_rule": "auto" if auto_history is not None else "given",
+        "auto_features_tol": s.features_tol,
+        "auto_features_history": auto_history,
+        "feature_columns": fmap.width,
+        "precision": s.precision,
+        "n_candidates": int(pool.size),
+        "n_fixed": int(fixed.size),
+        "multiplicity": prep.counts[ids].tolist(),
+        "mmd_exact_rule": exact_rule,
+        "selector": {k: v for k, v in result.info.items()},
+        "method_options": dict(selector.options),
+        "timings": timings,
+    }
+    return Selection(
+        indices=indices,
+        weights=w,
+        points=x[indices].copy(),
+        method=s.method,
+        weights_rule=s.weights,
+        kernel=kern.name,
+        bandwidth=float(bandwidth),
+        feature_map=s.feature_map,
+        n_features=int(n_feat),
+        seed=seed,
+        mmd_features=float(mmd_feat),
+        mmd_exact=float(mmd_ex),
+        mmd_exact_rows=exact_rows,
+        report=report,
+        population=population,
+    )
+
+
+def _settings(
+    *,
+    kernel: Any,
+    bandwidth: Any,
+    method: Any,
+    weights: Any,
+    feature_map: Any,
+    n_features: Any,
+    nonfinite: Any,
+    standardise: Any,
+    exact_max_rows: Any,
+    chunk_size: Any,
+    n_candidates: Any,
+    features_tol: Any,
+    precision: Any,
+    method_options: dict[str, Any],
+) -> _Settings:
+    get_kernel(kernel)
+    _validate_choice("method", method, tuple(SELECTORS))
+    get_selector(method, **method_options)  # unknown options fail here, before any work
+    if not isinstance(features_tol, int | float) or not (0 < features_tol < 1):
+        raise ValueError(f"features_tol must be a number in (0, 1), got {features_tol!r}")
+    return _Settings(
+        kernel=kernel,
+        bandwidth=_validate_bandwidth(bandwidth),
+        method=method,
+        weights=_validate_choice("weights", weights, _WEIGHTS_RULES),
+        feature_map=_validate_choice("feature_map", feature_map, FEATURE_MAPS),
+        n_features=_validate_n_features(n_features),
+        nonfinite=_validate_choice("nonfinite", nonfinite, _NONFINITE),
+        standardise=bool(standardise),
+        exact_max_rows=_validate_int("exact_max_rows", exact_max_rows, 0),
+        chunk_size=None if chunk_size is None else _validate_int("chunk_size", chunk_size, 1),
+        n_candidates=None
+        if n_candidates in (None, "auto")
+        else _validate_int("n_candidates", n_candidates, 1),
+        features_tol=float(features_tol),
+        precision=_validate_choice("precision", precision, ("single", "double")),
+        method_options=method_options,
+    )
+
+
+# ============================================================================ public API
+def thin(
+    samples: npt.ArrayLike | Chain,
+    budget: int,
+    *,
+    kernel: str = "gaussian",
+    bandwidth: float | None = None,
+    method: str = "greedy",
+    weights: WeightsRule = "simplex",
+    feature_map: str = "orf",
+    n_features: int | str = "auto",
+    nonfinite: NonFinite = "drop",
+    standardise: bool = True,
+    exact_max_rows: int = 100_000,
+    chunk_size: int | None = None,
+    n_candidates: int | str = "auto",
+    features_tol: float = 0.1,
+    precision: Literal["single", "double"] = "single",
+    rng: np.random.Generator | int | None = None,
+    progress: Progress | None = None,
+    **method_options: Any,
+) -> Selection:
+    """Choose ``budget`` distinct weighted rows whose distribution is closest to the chain.
+
+    Parameters
+    ----------
+    samples : array_like, shape (n, d), or Chain
+        Chain rows in user units (a :class:`Chain` uses ``.samples``).
+    budget : int
+        Number of points ``m`` (1 <= m <= number of distinct finite rows).
+    kernel : {"gaussian", "laplace", "matern32", "matern52"}
+    bandwidth : float, optional
+        In standardised coordinates; default: median heuristic on a random subsample of
+        2000 finite rows (Gretton et al. 2012, Section 8).
+    method : {"greedy", "swap", "genetic", "random", "stride"}
+    weights : {"simplex", "uniform"}
+        Optimal simplex-constrained weights (exact QP) or equal weights.
+    feature_map : {"orf", "rff", "qmc"}
+    n_features : int or "auto"
+        Number of random frequencies ``D`` (the feature vector has ``2 D`` entries); "auto"
+        doubles from 64 until independent feature draws agree on the pilot MMD to
+        within ``features_tol`` (relative).
+    nonfinite : {"drop", "raise"}
+        Rows with NaN/inf are dropped and counted, or refused.
+    standardise : bool
+        Scale each parameter to mean 0, standard deviation 1 before the kernel.
+    exact_max_rows : int
+        Exact-kernel MMD over all rows up to this many, else over a uniform random subsample
+        of this many rows; 0 skips it (``mmd_exact`` is NaN).
+    chunk_size : int, optional
+        Rows per chunk in the streaming passes (default: about 16 MB of features).
+    n_candidates : int or "auto"
+        Size of the candidate pool of distinct rows for greedy/swap/genetic (drawn in
+        proportion to multiplicity); "auto" is ``max(10000, 50 m)`` capped at 512 MB of
+        features. All distinct rows are candidates when there are fewer.
+    features_tol : float
+        Relative tolerance of the automatic feature count.
+    precision : {"single", "double"}
+        Precision of feature values (sums are float64 either way).
+    rng : int or Generator, optional
+        Seed; the same input, settings and seed give the same selection.
+    progress : callable, optional
+        ``progress(done, total, what)``, called during long steps.
+    **method_options
+        Options of the selector (swap: ``max_sweeps``; genetic: ``population``,
+        ``generations``, ``elite``, ``tournament``, ``mutation_rate``, ``shortlist``, ``keep``).
+
+    Returns
+    -------
+    Selection
+        Indices into the rows of ``samples`` as given, weights, points in user units, both
+        MMDs and a report (rows dropped, distinct rows, standardisation, bandwidth rule,
+        feature-count history, timings).
+
+    References
+    ----------
+    Rahimi & Recht (2007); Yu et al. (2016); Avron et al. (2016); Chen, Welling & Smola (2010);
+    Gretton et al. (2012); Riabiz et al. (2022).
+    """
+    x = _validate_samples(samples)
+    m = _validate_int("budget", budget, 1)
+    s = _settings(
+        kernel=kernel,
+        bandwidth=bandwidth,
+        method=method,
+        weights=weights,
+        feature_map=feature_map,
+        n_features=n_features,
+        nonfinite=nonfinite,
+        standardise=standardise,
+        exact_max_rows=exact_max_rows,
+        chunk_size=chunk_size,
+        n_candidates=n_candidates,
+        features_tol=features_tol,
+        precision=precision,
+        method_options=method_options,
+    )
+    return _run(x, m, s, rng, progress)
+
+
+def _settings_from(selection: Selection, method: str | None, overrides: dict[str, Any]):
+    if not isinstance(selection, Selection):
+        raise TypeError(f"selection must be a Selection, got {type(selection).__name__}")
+    rep = selection.report
+    opts = dict(
+        kernel=selection.kernel,
+        bandwidth=selection.bandwidth,
+        method=method if method is not None else "greedy",
+        weights=selection.weights_rule,
+        feature_map=selection.feature_map,
+        n_features=selection.n_features,
+        nonfinite="drop",
+        standardise=rep.get("standardise", True),
+        exact_max_rows=100_000,
+        chunk_size=None,
+        n_candidates="auto",
+        features_tol=rep.get("auto_features_tol", 0.1),
+        precision=rep.get("precision", "single"),
+    )
+    method_options = {k: v for k, v in overrides.items() if k not in opts}
+    opts.update({k: v for k, v in overrides.items() if k in opts})
+    return _settings(**opts, method_options=method_options)
+
+
+def _check_belongs(x: np.ndarray, selection: Selection) -> None:
+    idx = np.asarray(selection.indices, dtype=np.int64)
+    if idx.size and (idx.min() < 0 or idx.max() >= x.shape[0]):
+        raise ValueError("selection does not belong to samples: indices out of range")
+    if selection.points.shape != (idx.size, x.shape[1]) or not np.array_equal(
+        x[idx], selection.points
+    ):
+        raise ValueError("selection does not belong to samples: points differ from the rows")
+
+
+def extend(
+    samples: npt.ArrayLike | Chain,
+    selection: Selection,
+    k: int,
+    *,
+    rng: np.random.Generator | int | None = None,
+    method: str | None = None,
+    progress: Progress | None = None,
+    **options: Any,
+) -> Selection:
+    """Add ``k`` points to ``selection``, keeping its points first and in order.
+
+    The kernel, bandwidth, feature map, feature count and weights rule are the selection's;
+    with the same ``rng`` as the original (default: ``selection.seed``) the same features are
+    drawn, so the greedy selection continues where it stopped. Weights are re-solved over all
+    ``m + k`` points. ``options`` override thin()'s keywords or pass selector options.
+    """
+    x = _validate_samples(samples)
+    k = _validate_int("k", k, 1)
+    _check_belongs(x, selection)
+    s = _settings_from(selection, method, options)
+    return _run(
+        x,
+        selection.m + k,
+        s,
+        selection.seed if rng is None else rng,
+        progress,
+        fixed_rows=np.asarray(selection.indices),
+        purpose="extend",
+    )
+
+
+def replace(
+    samples: npt.ArrayLike | Chain,
+    selection: Selection,
+    failed: npt.ArrayLike,
+    *,
+    by: Literal["index", "position"] = "index",
+    rng: np.random.Generator | int | None = None,
+    method: str | None = None,
+    progress: Progress | None = None,
+    **options: Any,
+) -> Selection:
+    """Replace failed points: survivors are kept first, the best substitutes are added.
+
+    Parameters
+    ----------
+    failed : array_like of int
+        Chain row indices (``by="index"``, entries of ``selection.indices``) or positions
+        ``0..m-1`` in the selection (``by="position"``). Failed rows (and rows with the same
+        value) are never chosen again.
+    """
+    x = _validate_samples(samples)
+    _check_belongs(x, selection)
+    _validate_choice("by", by, ("index", "position"))
+    f = np.asarray(failed)
+    if f.ndim != 1 or (f.size and not np.issubdtype(f.dtype, np.integer)):
+        raise TypeError(f"failed must be a 1-D sequence of integers, got {failed!r}")
+    f = f.astype(np.int64)
+    idx = np.asarray(selection.indices, dtype=np.int64)
+    if by == "position":
+        if np.any(f < 0) or np.any(f >= idx.size):
+            raise ValueError(f"failed positions must be in 0..{idx.size - 1}, got {f.tolist()}")
+        failed_rows = idx[f]
+    else:
+        missing = np.setdiff1d(f, idx)
+        if missing.size:
+            raise ValueError(f"failed has indices not in the selection: {missing.tolist()}")
+        failed_rows = f
+    survivors = idx[~np.isin(idx, failed_rows)]
+    s = _settings_from(selection, method, options)
+    return _run(
+        x,
+        selection.m,
+        s,
+        selection.seed if rng is None else rng,
+        progress,
+        fixed_rows=survivors,
+        excluded_rows=failed_rows,
+        purpose="replace",
+    )
+
+
+def disjoint(
+    samples: npt.ArrayLike | Chain,
+    selection: Selection,
+    budget: int | None = None,
+    *,
+    rng: np.random.Generator | int | None = None,
+    method: str | None = None,
+    progress: Progress | None = None,
+    **options: Any,
+) -> Selection:
+    """A new selection sharing no row (and no repeated value) with ``selection``.
+
+    ``budget`` defaults to ``selection.m``; settings are the selection's.
+    """
+    x = _validate_samples(samples)
+    _check_belongs(x, selection)
+    m = selection.m if budget is None else _validate_int("budget", budget, 1)
+    s = _settings_from(selection, method, options)
+    return _run(
+        x,
+        m,
+        s,
+        selection.seed if rng is None else rng,
+        progress,
+        excluded_rows=np.asarray(selection.indices),
+        purpose="disjoint",
+    )
