@@ -137,7 +137,7 @@ def weighted_mean_sd(
     wb = w.reshape((-1,) + (1,) * (y.ndim - 1))
     mean = np.sum(wb * y, axis=0)
     var = np.sum(wb * (y - mean) ** 2, axis=0)
-    return mean, np.sqrt(np.maximum(var, 0.0))
+    return np.asarray(mean), np.asarray(np.sqrt(np.maximum(var, 0.0)))
 
 
 def weighted_quantile(
@@ -184,12 +184,12 @@ def weighted_quantile(
         positions = np.cumsum(ws) - 0.5 * ws  # midpoint of each CDF step
         out[:, j] = np.interp(qf, positions, ys[:, j])  # clamps outside [p_1, p_m]
     out = out.reshape((qf.size,) + y.shape[1:])
-    return out[0] if qa.ndim == 0 else out
+    return np.asarray(out[0]) if qa.ndim == 0 else out
 
 
 def _exceedance(y: np.ndarray, w: np.ndarray, threshold: float) -> np.ndarray:
     wb = w.reshape((-1,) + (1,) * (y.ndim - 1))
-    return np.sum(wb * (y > threshold), axis=0)  # P(Q > t) under the weighted distribution
+    return np.asarray(np.sum(wb * (y > threshold), axis=0))  # P(Q > t), weighted
 
 
 # --------------------------------------------------------------------------------------------
@@ -539,7 +539,7 @@ def estimate_qoi(
 
     mean, sd = weighted_mean_sd(y, w)
     qv = weighted_quantile(y, w, qs) if qs.size else np.empty((0,) + shape)
-    quant = {float(q): qv[k] for k, q in enumerate(qs)}
+    quant = {float(q): np.asarray(qv[k]) for k, q in enumerate(qs)}
     exceed = {float(t): _exceedance(y, w, float(t)) for t in th}
     uncertainty: dict[str, np.ndarray] = {}
 
@@ -618,22 +618,22 @@ def estimate_qoi(
         _, r_sd = weighted_mean_sd(y - alpha * c, w)
         opt_se = np.sqrt(r_sd**2 / ess_points + (alpha * se_chain) ** 2)
         control = {
-            "mean": cv_mean,
-            "se": cv_se,
-            "correlation": rho,
+            "mean": np.asarray(cv_mean),
+            "se": np.asarray(cv_se),
+            "correlation": np.asarray(rho),
             "form": "discrepancy (coefficient 1): chain mean of cheap + weighted mean of "
             "(costly - cheap) at the points",
-            "cheap_chain_mean": chain_mean,
-            "cheap_points_mean": c_points,
-            "discrepancy_mean": d_mean,
-            "discrepancy_sd": d_sd,
-            "se_discrepancy": se_disc,
-            "se_chain": se_chain,
+            "cheap_chain_mean": np.asarray(chain_mean),
+            "cheap_points_mean": np.asarray(c_points),
+            "discrepancy_mean": np.asarray(d_mean),
+            "discrepancy_sd": np.asarray(d_sd),
+            "se_discrepancy": np.asarray(se_disc),
+            "se_chain": np.asarray(se_chain, dtype=np.float64),
             "ess_points": ess_points,
             "optimal": {
-                "alpha": alpha,
-                "mean": opt_mean,
-                "se": opt_se,
+                "alpha": np.asarray(alpha),
+                "mean": np.asarray(opt_mean),
+                "se": np.asarray(opt_se),
                 "form": "optimal coefficient alpha = rho sigma_costly / sigma_cheap, "
                 "estimated from the same points",
             },
@@ -649,7 +649,7 @@ def estimate_qoi(
         sd=sd,
         quantiles=quant,
         exceedance=exceed,
-        uncertainty=uncertainty,
+        uncertainty={k: np.asarray(v, dtype=np.float64) for k, v in uncertainty.items()},
         control_variate=control,
         n_used=int(pos.size),
         n_missing=int(m - pos.size),

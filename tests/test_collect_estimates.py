@@ -458,3 +458,32 @@ def test_weighted_quantile_ties_share_weight():
     np.testing.assert_allclose(
         weighted_quantile(y, np.ones(6), q), np.quantile(y, q, method="hazen"), atol=1e-15
     )
+
+
+def test_estimate_fields_are_arrays():
+    # The record promises ndarrays (shape () for a scalar QoI), not numpy scalars: the run
+    # store hashes and round-trips them by type.
+    chain, idx, w = _chain_and_points(seed=1, m=6)
+    c = chain[:, 0]
+    est = estimate_qoi(
+        c[idx] + 1,
+        w,
+        name="h",
+        thresholds=(3.0,),
+        cheap_on_points=c[idx],
+        cheap_on_chain=c,
+        rng=0,
+        bootstrap=50,
+    )
+    arrays_ = [
+        est.mean,
+        est.sd,
+        *est.quantiles.values(),
+        *est.exceedance.values(),
+        *est.uncertainty.values(),
+    ]
+    cv = est.control_variate
+    arrays_ += [v for v in cv.values() if not isinstance(v, str | dict | float)]
+    arrays_ += [v for v in cv["optimal"].values() if not isinstance(v, str)]
+    for a in arrays_:
+        assert type(a) is np.ndarray and a.shape == () and a.dtype == np.float64

@@ -396,3 +396,52 @@ def test_long_vector_is_thinned_in_html_but_complete_in_tables(tmp_path):
     text = build_report(d, tmp_path).read_text()
     assert "15 of 40 axis values shown" in text
     assert len([r for r in report_tables(d)["estimates"] if r["quantity"] == "h_long"]) == k
+
+
+def test_report_command_on_a_real_store(cli_app, tmp_path):
+    # End to end: records written through the run store, read back by its loader, reported.
+    from winnow.tasks.records import Chain, RunSpec
+    from winnow.tasks.store import RunStore
+
+    runner, app = cli_app
+    d = make_data()
+    n = d.chain_samples.shape[0]
+    chain = Chain(
+        samples=d.chain_samples,
+        names=d.chain_names,
+        units=d.chain_units,
+        chain_index=np.repeat([0, 1], n // 2),
+        draw_index=np.tile(np.arange(n // 2), 2),
+        source="sampled:test",
+        diagnostics=d.chain_diagnostics,
+    )
+    specs = [
+        RunSpec(
+            run_id=o.run_id,
+            point_index=int(i),
+            params={},
+            weight=float(w),
+            run_dir=o.run_dir,
+            argv=("solver",),
+            deck_hashes={},
+            key=o.key,
+        )
+        for o, i, w in zip(d.outcomes, d.selection.indices, d.selection.weights, strict=True)
+    ]
+    store = tmp_path / "study.h5"
+    RunStore.create(store, "spring-demo")
+    with RunStore.open_for_write(store) as wr:
+        rev = wr.new_revision("study:\n  name: spring-demo\n")
+        wr.write_chain(rev, chain)
+        wr.write_selection(rev, d.selection)
+        wr.write_runs(rev, specs, d.outcomes)
+        wr.write_results(rev, d.qoi_values, d.estimates)
+    out = tmp_path / "rep"
+    res = runner.invoke(app, ["report", str(store), "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    text = (out / "report.html").read_text()
+    assert f"{float(d.estimates[0].mean):.4g}" in text and "p003" in text
+    res = runner.invoke(
+        app, ["report", str(store), "--revision", "r9999", "--out", str(tmp_path / "other")]
+    )
+    assert res.exit_code == 2 and not (tmp_path / "other").exists()
