@@ -445,3 +445,13 @@ def test_report_command_on_a_real_store(cli_app, tmp_path):
         app, ["report", str(store), "--revision", "r9999", "--out", str(tmp_path / "other")]
     )
     assert res.exit_code == 2 and not (tmp_path / "other").exists()
+
+
+def test_minimal_report_data_renders(tmp_path):
+    # A store with only a config (nothing sampled yet) still gives a readable report.
+    d = ReportData(study="empty-study")
+    text = build_report(d, tmp_path).read_text()
+    assert "No diagnostics recorded" in text and "No selection recorded" in text
+    assert 'class="caution"' in text
+    assert report_markdown(d).startswith("# Collect report: empty-study")
+    assert all(p.is_file() for p in export_csv(d, tmp_path))
