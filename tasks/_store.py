@@ -194,6 +194,31 @@ def _check_text(s: str, where: str, lossy_nul: bool) -> str:
     return s
 
 
+def value_form(x: Any) -> str:
+    """How an array-valued record field was given, so it reads back as the same kind of
+    object: ``""`` for an ndarray, else ``numpy_scalar``, ``float``, ``int``, ``bool``,
+    ``complex`` or ``list``."""
+    if isinstance(x, np.ndarray):
+        return ""
+    if isinstance(x, np.generic):
+        return "numpy_scalar"
+    for t in (bool, int, float, complex, list):
+        if isinstance(x, t):
+            return t.__name__
+    return ""
+
+
+def restore_form(arr: np.ndarray, form: str) -> Any:
+    """Inverse of :func:`value_form` applied to the stored array."""
+    if not form:
+        return arr
+    if form == "numpy_scalar":
+        return arr[()]
+    if form == "list":
+        return arr.tolist()
+    return {"bool": bool, "int": int, "float": float, "complex": complex}[form](arr[()])
+
+
 def put_array(
     group: h5py.Group,
     name: str,
@@ -232,6 +257,8 @@ def put_array(
     ds.attrs["units"] = _attr_value(units)
     ds.attrs["description"] = description
     ds.attrs["numpy_dtype"] = arr.dtype.str if kind != "O" else "object"
+    if value_form(data):
+        ds.attrs["python_form"] = value_form(data)
     for k, v in attrs.items():
         ds.attrs[k] = _attr_value(v)
     ds.attrs["sha256"] = hash_dataset_content(stored)
@@ -244,8 +271,13 @@ def put_text(group: h5py.Group, name: str, text: str, *, description: str, **att
     )
 
 
-def get_array(ds: h5py.Dataset) -> np.ndarray:
-    """Read a dataset written by :func:`put_array`, with its original dtype."""
+def get_array(ds: h5py.Dataset) -> Any:
+    """Read a dataset written by :func:`put_array`: same dtype, and the same kind of object
+    (ndarray, numpy scalar, Python number or list) as was given."""
+    return restore_form(_get_ndarray(ds), str(ds.attrs.get("python_form", "")))
+
+
+def _get_ndarray(ds: h5py.Dataset) -> np.ndarray:
     nd = str(ds.attrs.get("numpy_dtype", ""))
     if h5py.check_string_dtype(ds.dtype) is not None:
         raw = ds.asstr()[()]
@@ -913,7 +945,7 @@ def write_diagnostics(parent: h5py.Group, diag: Diagnostics) -> None:
     put_array(
         g,
         "acceptance",
-        np.asarray(diag.acceptance),
+        diag.acceptance,
         units=ONE,
         description="acceptance rate of each chain (NaN when unknown)",
     )
@@ -1064,7 +1096,7 @@ def write_selection(rev: h5py.Group, sel: Selection, digest: str) -> None:
             put_array(
                 pop,
                 f"p{i:04d}",
-                np.asarray(ind),
+                ind,
                 units=ONE,
                 description="chain row indices of one member",
                 mmd=to_json(mmd, "population mmd"),
@@ -1469,7 +1501,7 @@ def _put_array_dict(
         put_array(
             g,
             f"k{i:04d}",
-            np.asarray(v),
+            v,
             units=units,
             description=f"{what} {k!r}",
             key=to_json(k, f"{name} key"),
@@ -1521,6 +1553,13 @@ def write_results(
     _col(vg, "value_dtype", [a.dtype.str for a in arrays], TEXT, "numpy dtype of each value")
     _col(
         vg,
+        "value_form",
+        [value_form(v.value) for v in values],
+        TEXT,
+        "how each value was given: '' ndarray, numpy_scalar, float, int, bool, list",
+    )
+    _col(
+        vg,
         "value_start",
         [int(s) for s in starts],
         ONE,
@@ -1565,14 +1604,14 @@ def write_results(
         put_array(
             q,
             "mean",
-            np.asarray(e.mean),
+            e.mean,
             units=e.units,
             description="weighted posterior-predictive mean",
         )
         put_array(
             q,
             "sd",
-            np.asarray(e.sd),
+            e.sd,
             units=e.units,
             description="weighted posterior-predictive standard deviation",
         )
@@ -1618,6 +1657,8 @@ def read_results(rev: h5py.Group) -> tuple[list[QoIValue], list[QoIEstimate]]:
             raise StoreFormatError(f"{vg.name}: value {i} lies outside value_data")
         shape = tuple(json.loads(cols["value_shape"][i]))
         val = data[s : s + c].reshape(shape).astype(np.dtype(str(cols["value_dtype"][i])))
+        if "value_form" in cols:
+            val = restore_form(val, str(cols["value_form"][i]))
         values.append(
             build(
                 QoIValue,

@@ -654,3 +654,35 @@ def test_tagged_json_round_trip(value: Any) -> None:
 
     json.loads(text, parse_constant=bare)  # strict JSON (json would accept NaN otherwise)
     assert_same(value, from_json(text), "value")
+
+
+def test_scalars_in_array_fields_come_back_as_given(store: Path) -> None:
+    # Stages may fill ndarray-typed fields with numpy scalars or Python numbers; the record
+    # hash tells these apart from 0-d arrays, so the store must give back the same kind.
+    specs, _ = odd_runs()
+    values = [
+        QoIValue(specs[0].run_id, "a", np.float64(1.5), "ok"),
+        QoIValue(specs[0].run_id, "b", 2.5, "ok"),  # type: ignore[arg-type]
+        QoIValue(specs[0].run_id, "c", np.array(3.5), "ok"),
+        QoIValue(specs[0].run_id, "d", [1.0, 2.0], "ok"),  # type: ignore[arg-type]
+    ]
+    est = QoIEstimate(
+        name="a",
+        units="m",
+        mean=np.float64(1.5),  # type: ignore[arg-type]
+        sd=0.25,  # type: ignore[arg-type]
+        quantiles={0.5: np.float32(1.5), 0.95: 2.0},  # type: ignore[dict-item]
+        exceedance={1.0: np.array(0.5)},
+        uncertainty={"bootstrap_se": np.float64(np.nan)},  # type: ignore[dict-item]
+        control_variate=None,
+        n_used=1,
+        n_missing=0,
+    )
+    with RunStore.open_for_write(store) as w:
+        rev = w.new_revision("x")
+        w.write_results(rev, values, [est])
+        got_values, got_estimates = w.read_results(rev)
+    assert_same(values, got_values, "values")
+    assert_same([est], got_estimates, "estimates")
+    assert type(got_estimates[0].sd) is float and type(got_values[3].value) is list
+    assert check(store).ok
