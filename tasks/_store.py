@@ -614,6 +614,12 @@ def normalise_observations(obs: Any) -> tuple[str, dict[str, np.ndarray], str]:
         return "dict", cols, ""
     arr = np.asarray(obs)
     if arr.dtype.names is not None:
+        nested = [n for n in arr.dtype.names if arr.dtype[n].names is not None]
+        if nested:
+            raise TypeError(
+                f"observations: column(s) {', '.join(map(repr, nested))} are themselves "
+                "structured; give a table of flat columns"
+            )
         cols = {n: np.ascontiguousarray(arr[n]) for n in arr.dtype.names}
         return "structured", cols, to_json(np.lib.format.dtype_to_descr(arr.dtype))
     return "array", {"values": arr}, ""
@@ -657,25 +663,12 @@ def read_observations(rev: h5py.Group) -> Any:
     if form == "array":
         return cols["values"]
     descr = attr_json(g, "dtype_descr")
-    dtype = np.lib.format.descr_to_dtype(_tuplify_descr(descr))
+    dtype = np.lib.format.descr_to_dtype(descr)
     n = len(next(iter(cols.values()))) if cols else 0
     out = np.empty(n, dtype=dtype)
     for name in names:
         out[name] = cols[name]
     return out
-
-
-def _tuplify_descr(descr: Any) -> Any:
-    if isinstance(descr, list):
-        return [
-            tuple(_tuplify_descr(x) for x in d) if isinstance(d, list | tuple) else d for d in descr
-        ]
-    return descr
-
-
-def observations_hash(rev: h5py.Group) -> str:
-    form, cols, _ = normalise_observations(read_observations(rev))
-    return hash_object(cols)
 
 
 def write_provenance(rev: h5py.Group, versions: Mapping[str, str], flow_run_id: str) -> None:
