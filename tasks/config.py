@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 import shlex
 from collections.abc import Callable
 from pathlib import Path
@@ -115,6 +116,7 @@ class Prior(_Model):
 
 
 _NAME_PATTERN = r"^[A-Za-z_][A-Za-z0-9_]*$"
+_CALLABLE = re.compile(r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$")
 
 
 class Parameter(_Model):
@@ -480,6 +482,11 @@ class QoISettings(_Model):
         "column, row}}, {hdf5: {file, dataset}}, {regex: {file, pattern, group}} or "
         "{function: 'module:function'}."
     )
+    axis: dict[str, Any] | None = Field(
+        None,
+        description="For a vector quantity (a time series, a field at probes): the axis shared "
+        "by all runs, {name, units, values: [...]} or {name, units, reader: {...}}.",
+    )
     cheap_qoi: str | None = Field(
         None,
         pattern=r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$",
@@ -500,6 +507,31 @@ class QoISettings(_Model):
         if len(keys) != 1 or len(v) != 1:
             raise ValueError(f"give exactly one reader among {', '.join(kinds)}; got {list(v)}")
         return v
+
+    @model_validator(mode="after")
+    def _reader_options(self) -> QoISettings:
+        # The collect stage's own validation knows every reader's options; a pure check
+        # (nothing is read or imported except a 'function' reader's module).
+        from .collect import validate_qoi_spec
+
+        if "function" in self.reader:
+            # importing the user's function waits for preflight, which knows the search path
+            target = self.reader["function"]
+            if not isinstance(target, str) or not _CALLABLE.match(target):
+                raise ValueError(f"reader.function: expected 'module:function', got {target!r}")
+            return self
+        try:
+            validate_qoi_spec(self.reader_spec())
+        except TypeError as exc:  # pydantic turns only ValueError into a validation error
+            raise ValueError(str(exc)) from None
+        return self
+
+    def reader_spec(self) -> dict[str, Any]:
+        """This quantity as the collect stage's reader spec."""
+        spec: dict[str, Any] = {"name": self.name, "units": self.units, "reader": self.reader}
+        if self.axis is not None:
+            spec["axis"] = self.axis
+        return spec
 
 
 class CollectSettings(_Model):

@@ -8,8 +8,10 @@ and the study flow writes what they return to the run store. Nothing here touche
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import math
+import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -137,7 +139,7 @@ def sample_stage(
         priors = [
             {"name": p.name, "units": p.units, **p.prior.model_dump()} for p in config.parameters
         ]
-        search = resolve(base_dir / "x", s.model.search_path)
+        search = _search_path(config, base_dir)
         if s.model.forward is not None:
             assert s.observations is not None
             obs_cfg = s.observations
@@ -290,11 +292,7 @@ def cheap_predictions(
     """
     from .sampling import load_callable
 
-    search = (
-        resolve(base_dir / "x", config.sample.model.search_path)
-        if config.sample.model
-        else base_dir
-    )
+    search = _search_path(config, base_dir)
     out = {}
     for q in config.collect.qoi:
         if q.cheap_qoi is None:
@@ -308,6 +306,24 @@ def cheap_predictions(
             )
         out[q.name] = (on_chain, on_chain[selection.indices])
     return out
+
+
+@contextlib.contextmanager
+def _importable(folder: Path):
+    """Put ``folder`` first on the import path for the duration (user reader functions)."""
+    added = str(folder) not in sys.path
+    if added:
+        sys.path.insert(0, str(folder))
+    try:
+        yield
+    finally:
+        if added:
+            sys.path.remove(str(folder))
+
+
+def _search_path(config: StudyConfig, base_dir: Path) -> Path:
+    m = config.sample.model
+    return resolve(base_dir / "x", m.search_path) if m is not None else Path(base_dir)
 
 
 def collect_stage(
@@ -333,12 +349,13 @@ def collect_stage(
     values: list[QoIValue] = []
     estimates: list[QoIEstimate] = []
     for q in config.collect.qoi:
-        spec_dict = {"name": q.name, "units": q.units, "reader": q.reader}
+        spec_dict = q.reader_spec()
         vals = []
         for s in specs:
             o = outcomes.get(s.run_id)
             state = o.state if o is not None else "not_run"
-            vals.append(read_qoi(s.run_dir, spec_dict, run_id=s.run_id, run_state=state))
+            with _importable(_search_path(config, base_dir)):
+                vals.append(read_qoi(s.run_dir, spec_dict, run_id=s.run_id, run_state=state))
         values.extend(vals)
         order = [positions[v.run_id] for v in vals]
         weights = selection.weights[order]
@@ -353,7 +370,9 @@ def collect_stage(
                 thresholds=tuple(q.thresholds),
                 cheap_on_points=None if on_points is None else on_points[order],
                 cheap_on_chain=on_chain,
-                chain_ess=ess,
+                # with a cheap prediction, its own ESS over the chains is the relevant one
+                chain_ess=None if on_chain is not None else ess,
+                chain_index=chain.chain_index,
                 resolve_weights=resolve_weights_for(chain.samples, selection, order),
                 bootstrap=config.collect.bootstrap,
                 rng=rng,
@@ -390,7 +409,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
 
     here = Path(base_dir) / "x"
     s = config.sample
-    search = resolve(here, s.model.search_path) if s.model else Path(base_dir)
+    search = _search_path(config, base_dir)
     if s.model is not None:
         spec = s.model.forward or s.model.log_density
         field = "sample.model.forward" if s.model.forward else "sample.model.log_density"
@@ -421,7 +440,14 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
                 f"budget: {config.budget} is larger than the {distinct} distinct finite rows "
                 f"of sample.import_chain.file {imp.file}"
             )
+    from .collect import validate_qoi_spec
+
     for q in config.collect.qoi:
+        with _importable(search):
+            try:
+                validate_qoi_spec(q.reader_spec())
+            except (ValueError, TypeError) as exc:
+                raise ValueError(f"collect.qoi[{q.name}].reader: {exc}") from None
         if q.cheap_qoi:
             try:
                 load_callable(q.cheap_qoi, search_path=search)
