@@ -82,7 +82,9 @@ def register(app: typer.Typer) -> None:
         from winnow.flows.study import study_flow
 
         try:
-            result = study_flow(cfg, base_dir=str(base), config_text=text, force=force)
+            result = study_flow(
+                cfg, base_dir=str(base), config_text=text, force=force, config_path=str(config)
+            )
         except ConvergenceError as exc:
             print(f"winnow: {exc}", file=sys.stderr)
             raise SystemExit(1) from None

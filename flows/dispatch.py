@@ -38,13 +38,9 @@ from winnow.tasks.dispatch import (
 )
 from winnow.tasks.records import RunOutcome, RunSpec
 
-__all__ = ["RunNotSucceeded", "dispatch_flow", "make_task_runner", "run_point"]
+__all__ = ["dispatch_flow", "make_task_runner", "run_point"]
 
 _DASK_CLUSTER_DEFAULTS = {"threads_per_worker": 1, "dashboard_address": None}
-
-
-class RunNotSucceeded(RuntimeError):
-    """Raised by :func:`run_point` so that an unsuccessful run shows as a failed task run."""
 
 
 def make_task_runner(config_value: Any, *, concurrency: int):
@@ -88,15 +84,18 @@ def make_task_runner(config_value: Any, *, concurrency: int):
 
 
 @task(task_run_name="run-{spec.run_id}")
-def run_point(spec: RunSpec, options: RunOptions) -> RunOutcome:
+def run_point(spec: RunSpec, options: RunOptions) -> Any:
     """Run the solver of one point (journalled in its run folder).
 
-    Returns the outcome when the run succeeded; raises :class:`RunNotSucceeded` otherwise, so
-    the task run shows Failed with the reason.
+    Returns the outcome when the run succeeded; otherwise returns a ``Failed`` state whose
+    message gives the reason, so the task run shows Failed without a Python traceback (the
+    solver failing is an expected event, not an error of this code).
     """
+    from prefect.states import Failed
+
     outcome = execute_run(spec, options)
     if outcome.state != "succeeded":
-        raise RunNotSucceeded(f"run {spec.run_id} {outcome.state}: {outcome.message}")
+        return Failed(message=f"run {spec.run_id} {outcome.state}: {outcome.message}")
     return outcome
 
 

@@ -31,4 +31,4 @@ def scheduled_study(config_path: str) -> StudyResult:
     path = Path(config_path).resolve()
     cfg, text = load_study(path)
     preflight(cfg, path.parent)
-    return study_flow(cfg, base_dir=str(path.parent), config_text=text)
+    return study_flow(cfg, base_dir=str(path.parent), config_text=text, config_path=str(path))

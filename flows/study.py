@@ -27,6 +27,7 @@ from prefect.artifacts import (
 )
 from prefect.runtime import flow_run
 
+from winnow.tasks import stages
 from winnow.tasks.config import StudyConfig, config_hash, resolve
 from winnow.tasks.prefect_tasks import (
     collect_task,
@@ -136,6 +137,7 @@ def study_flow(
     base_dir: str = ".",
     config_text: str | None = None,
     force: bool = False,
+    config_path: str | None = None,
 ) -> StudyResult:
     """Run (or resume) a whole study.
 
@@ -149,6 +151,9 @@ def study_flow(
         The config file's text, stored and hashed as given; a canonical YAML dump otherwise.
     force : bool
         Replace an existing run store instead of adding to it.
+    config_path : str, optional
+        The config file, recorded (with its hash) among the revision's inputs so that later
+        commands (``winnow rerun``) find the folder its relative paths start from.
     """
     import yaml
 
@@ -161,6 +166,8 @@ def study_flow(
         config_text = yaml.safe_dump(config.model_dump(mode="json", by_alias=True), sort_keys=False)
     store_path = resolve(here, config.store)
     inputs = study_inputs(config, base)
+    if config_path is not None:
+        inputs["config"] = Path(config_path).resolve()
     missing = [f"{k}: {p}" for k, p in inputs.items() if not p.is_file()]
     if missing:
         raise FileNotFoundError("input file(s) not found: " + "; ".join(missing))
@@ -176,7 +183,9 @@ def study_flow(
             rev = store.new_revision(
                 config_text,
                 inputs=inputs,
+                observations=_observation_table(config, base),
                 flow_run_id=str(flow_run.id) if flow_run.id else None,
+                description=config.study.description,
             )
             log.info("study %s: new revision %s", config.study.name, rev)
         else:
@@ -238,14 +247,21 @@ def study_flow(
         estimates={e.name: _estimate_summary(e) for e in estimates},
         up_to_date=up_to_date,
     )
-    result.report = str(_report(store_path, rev))
-    _estimates_artifact(config, rev, estimates, result)
+    result.report = str(_report(store_path, rev, config.study.name))
     if counts.get("succeeded", 0) == 0:
         raise RuntimeError(
             f"study {config.study.name} {rev}: no run succeeded ({counts}); every outcome is "
             f"recorded in {store_path} -- see `winnow status {store_path}`"
         )
     return result
+
+
+def _observation_table(config: StudyConfig, base: Path) -> dict[str, Any] | None:
+    o = config.sample.observations
+    if o is None:
+        return None
+    needed = [o.target, *o.inputs] + ([o.noise.column] if o.noise.column else [])
+    return stages.read_observations(resolve(base / "x", o.file), needed).columns
 
 
 def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | None:
@@ -322,36 +338,32 @@ def _key(name: str) -> str:
     return "-".join(p for p in out.split("-") if p) or "study"
 
 
+def _tables(**fields: Any) -> dict[str, list[dict[str, Any]]]:
+    """The collect stage's report tables of a partly filled report record."""
+    from winnow.tasks.collect import ReportData, report_tables
+
+    return report_tables(ReportData(**fields))
+
+
 def _diagnostics_artifact(chain, study: str) -> None:
     d = chain.diagnostics
     if d is None:
         return
-    rows = [
-        {
-            "parameter": n,
-            "R-hat": round(p.rhat, 4),
-            "bulk ESS": round(p.ess_bulk, 1),
-            "tail ESS": round(p.ess_tail, 1),
-            "mean": p.mean,
-            "sd": p.sd,
-            "MCSE of mean": p.mcse_mean,
-        }
-        for n, p in d.parameters.items()
-    ]
+    rows = _tables(
+        study=study, chain_names=chain.names, chain_units=chain.units, chain_diagnostics=d
+    )["diagnostics"]
     create_table_artifact(
         rows,
         key=f"{_key(study)}-chain-diagnostics",
-        description=f"Convergence of the chain ({d.n_chains} chains x {d.n_draws} draws, "
+        description=f"Convergence of the chain ({d.n_chains} chains x {d.n_draws} draws; "
         f"{'passed' if d.passed else 'FAILED'} the thresholds)",
     )
 
 
 def _selection_artifact(chain, selection, study: str) -> None:
-    rows = []
-    for k in range(selection.m):
-        row = {"row": int(selection.indices[k]), "weight": float(selection.weights[k])}
-        row.update({n: float(v) for n, v in zip(chain.names, selection.points[k], strict=True)})
-        rows.append(row)
+    rows = _tables(
+        study=study, chain_names=chain.names, chain_units=chain.units, selection=selection
+    )["points"]
     create_table_artifact(
         rows,
         key=f"{_key(study)}-chosen-points",
@@ -361,40 +373,35 @@ def _selection_artifact(chain, selection, study: str) -> None:
 
 
 def _outcomes_artifact(study: str, specs, outcomes) -> None:
-    rows = [
-        {
-            "run": s.run_id,
-            "state": outcomes[s.run_id].state,
-            "attempts": len(outcomes[s.run_id].attempts),
-            "seconds": round(outcomes[s.run_id].seconds, 2),
-            "reused from": outcomes[s.run_id].reused_from,
-        }
-        for s in specs
-    ]
+    rows = _tables(study=study, outcomes=[outcomes[s.run_id] for s in specs])["outcomes"]
     create_table_artifact(
         rows, key=f"{_key(study)}-run-outcomes", description="How each solver run ended"
     )
 
 
-def _estimates_artifact(config, rev, estimates, result: StudyResult) -> None:
-    from winnow.tasks.collect import estimates_markdown
+def _report_artifacts(data, study: str, rev: str) -> None:
+    from winnow.tasks.collect import report_markdown, report_tables
 
     create_markdown_artifact(
-        estimates_markdown(
-            estimates,
-            study=config.study.name,
-            revision=rev,
-            counts=result.counts,
-            reused=result.reused,
-        ),
-        key=f"{_key(config.study.name)}-estimates",
-        description=f"Estimates of study {config.study.name} {rev}",
+        report_markdown(data),
+        key=f"{_key(study)}-estimates",
+        description=f"Estimates of study {study} {rev} with their uncertainty",
+    )
+    create_table_artifact(
+        report_tables(data)["estimates"],
+        key=f"{_key(study)}-estimates-table",
+        description=f"Estimates of study {study} {rev}, one row per quantity",
     )
 
 
-def _report(store_path: Path, rev: str) -> Path:
-    from winnow.tasks.collect import build_report
+def _report(store_path: Path, rev: str, study: str) -> Path:
+    """Write the HTML report and CSV exports beside the store; create the artifacts."""
+    from winnow.tasks.collect import build_report, export_csv
     from winnow.tasks.store import load_report_data
 
+    data = load_report_data(store_path, rev)
     out_dir = store_path.with_name(store_path.stem + "-report")
-    return build_report(load_report_data(store_path, rev), out_dir)
+    path = build_report(data, out_dir)
+    export_csv(data, out_dir)
+    _report_artifacts(data, study, rev)
+    return path
