@@ -253,14 +253,20 @@ def _corrective_positions(
     re-solve the simplex weights over all chosen rows (used with ``weights="simplex"``)."""
     phi = problem.phi
     avail = problem.pool_free.copy()
-    chosen = [int(i) for i in problem.fixed_pos]
-    total = m + extra - len(chosen)
-    total = min(total, int(np.sum(avail)))
-    n_main = m - len(chosen)
+    chosen: list[int] = []
     gram = np.zeros((0, 0))
-    if chosen:
-        f = phi[chosen].astype(np.float64)
-        gram = f @ f.T
+
+    def append(j: int) -> np.ndarray:
+        # the Gram matrix of the chosen rows grows one row/column at a time, by the same
+        # float64 operations whether a row is kept from before or newly chosen
+        col = phi[chosen].astype(np.float64) @ phi[j].astype(np.float64)
+        chosen.append(j)
+        return np.block([[gram, col[:, None]], [col[None, :], np.array([[problem.q[j]]])]])
+
+    for j in problem.fixed_pos:
+        gram = append(int(j))
+    total = min(m + extra - len(chosen), int(np.sum(avail)))
+    n_main = m - len(chosen)
     w = solve_simplex_qp(gram, problem.a[chosen]) if chosen else np.zeros(0)
     for step in range(total):
         if chosen:
@@ -273,9 +279,7 @@ def _corrective_positions(
         j = int(np.argmax(score))
         if not np.isfinite(score[j]):
             raise ValueError("not enough candidate rows left for the greedy selection")
-        col = (phi[chosen] @ phi[j]).astype(np.float64) if chosen else np.zeros(0)
-        gram = np.block([[gram, col[:, None]], [col[None, :], np.array([[problem.q[j]]])]])
-        chosen.append(j)
+        gram = append(j)
         avail[j] = False
         if step < n_main - 1 or extra:
             w = solve_simplex_qp(gram, problem.a[chosen])
