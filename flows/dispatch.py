@@ -116,7 +116,7 @@ def _outcome_of_failed(spec: RunSpec, state: Any, since: float) -> RunOutcome:
 def dispatch_flow(
     specs: Sequence[RunSpec],
     runner: Any = "local",
-    concurrency: int = 4,
+    concurrency: int = 1,
     known_successes: Mapping[str, str] | None = None,
     on_outcome: Callable[[RunOutcome], Any] | None = None,
     timeout: float | None = None,
