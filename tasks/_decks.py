@@ -25,6 +25,7 @@ import math
 import numbers
 import os
 import re
+import shlex
 import shutil
 import tempfile
 import traceback
@@ -123,8 +124,12 @@ def _validate_command(command: Any) -> tuple[str, ...]:
     if isinstance(command, str | bytes):
         text = command.decode() if isinstance(command, bytes) else command
         if any(ch.isspace() for ch in text.strip()) or not text.strip():
+            try:
+                hint = shlex.split(text)
+            except ValueError:
+                hint = text.split()
             raise TypeError(
-                f"command must be an argv list (no shell is used), e.g. {text.split()!r}, "
+                f"command must be an argv list (no shell is used), e.g. {hint!r}, "
                 f"not the single string {text!r}"
             )
         return (text,)
