@@ -483,8 +483,8 @@ class RunStore:
             raise IsADirectoryError(f"store {str(p)!r} is a folder, expected a file path")
         if p.exists() and not force:
             raise FileExistsError(f"store {str(p)!r} already exists; pass force=True to replace it")
-        if not p.parent.is_dir():
-            raise FileNotFoundError(f"folder {str(p.parent)!r} of store does not exist")
+        if p.parent.exists() and not p.parent.is_dir():
+            raise NotADirectoryError(f"{str(p.parent)!r} (folder of the store) is a file")
         versions = version_info()
 
         def apply(f: h5py.File) -> None:
@@ -496,6 +496,7 @@ class RunStore:
             f.attrs["format"] = "winnow run store; layout in docs/store-layout.md"
             S.put_group(f, "revisions", "one group per revision of the study, r0001 first")
 
+        p.parent.mkdir(parents=True, exist_ok=True)  # e.g. a fresh clone's studies/ folder
         lock = S.WriterLock(p)
         lock.acquire()
         try:

@@ -216,6 +216,17 @@ def test_existing_store_not_overwritten_without_force(tmp_path: Path) -> None:
         assert r.study == "other" and r.revisions() == []
 
 
+def test_create_makes_missing_folders(tmp_path: Path) -> None:
+    p = tmp_path / "studies" / "new" / "s.h5"
+    RunStore.create(p, "fresh")
+    with RunStore.open_read(p) as r:
+        assert r.study == "fresh" and r.schema_version == 1
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    with pytest.raises(NotADirectoryError, match="is a file"):
+        RunStore.create(blocker / "s.h5", "x")
+
+
 def test_not_a_store_is_refused(tmp_path: Path) -> None:
     plain = tmp_path / "plain.h5"
     with h5py.File(plain, "w") as f:
