@@ -181,3 +181,22 @@ def test_time_steps_sum_to_t_end_and_grow_by_stage() -> None:
         np.testing.assert_allclose(sizes[1:] / sizes[:-1], preset.step_growth, rtol=1e-12)
         assert dts.size == sizes.size * preset.steps_per_stage
         assert dts[0] <= 30 * DAY * preset.first_step_fraction
+
+
+@pytest.mark.parametrize(
+    ("changes", "error", "match"),
+    [
+        ({"transmissivity": -1.0}, ValueError, "key 'transmissivity': expected a positive"),
+        ({"storativity": float("nan")}, ValueError, "config.storativity: expected a finite"),
+        ({"river": "on"}, TypeError, "config.river: expected a bool"),
+        ({"grid": "huge"}, ValueError, "config.grid: expected one of"),
+        ({"spring_x": 900.0}, ValueError, "aquifer side of the river"),
+    ],
+)
+def test_simulate_validates_a_config_built_in_code(changes, error, match) -> None:
+    base = {
+        "transmissivity": T, "storativity": S, "pumping_rate": Q, "t_end": DAY,
+        "spring_x": 100.0, "spring_y": 0.0, "river": True, "river_distance": 800.0,
+    }  # fmt: skip
+    with pytest.raises(error, match=match):
+        simulate(ModelConfig(**{**base, **changes}))

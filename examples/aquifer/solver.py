@@ -463,6 +463,25 @@ class SimulationResult:
     meta: dict[str, Any]
 
 
+def _validate_config(config: ModelConfig) -> None:
+    """The deck checks, for a ModelConfig built in code rather than read from a deck."""
+    values = asdict(config)
+    for key, (kind, _, choices) in _SCHEMA.items():
+        value = values[key]
+        if key == "river":
+            if not isinstance(value, bool):
+                raise TypeError(f"config.river: expected a bool, got {value!r}")
+            values[key] = "on" if value else "off"
+        elif kind == "number":
+            if isinstance(value, bool) or not isinstance(value, int | float):
+                raise TypeError(f"config.{key}: expected a number, got {value!r}")
+            if not math.isfinite(value):
+                raise ValueError(f"config.{key}: expected a finite number, got {value!r}")
+        elif value not in (choices or ()):
+            raise ValueError(f"config.{key}: expected one of {list(choices or ())}, got {value!r}")
+    _check_range(values, {}, "<config>")
+
+
 def _time_steps(t_end: float, preset: GridPreset) -> np.ndarray:
     """Step sizes [s]: ``n`` steps of ``dt0``, ``n`` of ``g dt0``, ``n`` of ``g² dt0``, ...
 
@@ -493,6 +512,7 @@ def simulate(config: ModelConfig, probes: npt.ArrayLike | None = None) -> Simula
     SimulationResult
     """
     started = time.perf_counter()
+    _validate_config(config)
     preset = GRID_PRESETS[config.grid]
     grid = build_grid(config)
     x, y = grid.x, grid.y
