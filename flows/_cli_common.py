@@ -40,5 +40,12 @@ def guarded(func: Callable[P, R]) -> Callable[P, R]:
             return func(*args, **kwargs)
         except (UsageError, ValueError, TypeError, FileNotFoundError, IsADirectoryError) as exc:
             fail(str(exc))
+        except (RuntimeError, FileExistsError) as exc:
+            # a store held by another writer, or one that would be overwritten: refused
+            from winnow.tasks.store import StoreBusyError
+
+            if isinstance(exc, StoreBusyError | FileExistsError):
+                fail(str(exc))
+            raise
 
     return wrapper
