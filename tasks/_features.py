@@ -127,8 +127,13 @@ class FeatureMap:
         """Length of a feature vector (2 D: cos and sin)."""
         return 2 * self.n_features
 
-    def __call__(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
-        """Features of rows ``x`` (user units), shape (n, 2 D)."""
+    def __call__(
+        self, x: np.ndarray, out: np.ndarray | None = None, *, scaled: bool = True
+    ) -> np.ndarray:
+        """Features of rows ``x`` (user units), shape (n, 2 D).
+
+        ``scaled=False`` leaves out the factor ``D^{-1/2}`` (the caller applies it once to a
+        sum instead of to every entry)."""
         n_freq = self.n_features
         z = (np.asarray(x, dtype=np.float64) - self.mean) / self.scale
         if out is None:
@@ -137,7 +142,8 @@ class FeatureMap:
         np.matmul(z.astype(self.dtype, copy=False), self._omega_t, out=head)  # one product
         np.sin(head, out=out[:, n_freq:])
         np.cos(head, out=head)  # in place
-        out *= self.dtype.type(1.0 / np.sqrt(n_freq))
+        if scaled:
+            out *= self.dtype.type(1.0 / np.sqrt(n_freq))
         return out
 
     def __post_init__(self) -> None:
@@ -216,8 +222,8 @@ def mean_embedding(
     buf = np.empty((min(chunk_size, max(n, 1)), fmap.width), dtype=fmap.dtype)
     for a, b in _chunks(n, chunk_size):
         part = x[a:b] if rows is None else x[rows[a:b]]
-        phi = fmap(part, out=buf[: b - a])
+        phi = fmap(part, out=buf[: b - a], scaled=False)
         acc += counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS, then float64
         if progress is not None:
             progress(b, n, "mean embedding")
-    return acc / float(np.sum(counts))
+    return acc / (float(np.sum(counts)) * np.sqrt(fmap.n_features))

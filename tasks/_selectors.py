@@ -22,7 +22,7 @@ rows first, right size) so every selector obeys the same contract.
     tournament selection, cardinality-preserving crossover (keep the parents' common rows, fill
     up from their symmetric difference) and mutation that brings in new chain rows (half from
     a shortlist of the next greedy choices, half from the whole pool). Returns a population of
-    distinct near-optimal sets with their MMDs.
+    distinct near-optimal sets with their MMDs: the best distinct sets evaluated in the run.
 ``random``, ``stride``
     Baselines: rows drawn uniformly from the chain (without repeating a row), and rows at
     equal stride through the chain in its given order.
@@ -429,11 +429,13 @@ class GeneticSelector(Selector):
         free_pool = np.flatnonzero(problem.pool_free)
         rate = o["mutation_rate"] if o["mutation_rate"] is not None else 2.0 / max(n_free, 1)
         cache: dict[bytes, float] = {}
+        archive: dict[bytes, np.ndarray] = {}  # every distinct set evaluated
 
         def fitness(genes: np.ndarray) -> float:
             key = genes.tobytes()
             if key not in cache:
                 cache[key] = problem.weigh(problem.phi[np.concatenate([fixed_pos, genes])])[1]
+                archive[key] = genes
             return cache[key]
 
         def mutate(genes: np.ndarray, force: bool) -> np.ndarray:
@@ -494,8 +496,10 @@ class GeneticSelector(Selector):
             history.append(min(fitness(p) for p in population))
             if progress is not None:
                 progress(gen + 1, generations, "genetic")
-        population.sort(key=fitness)
-        keep = population[: max(1, int(o["keep"]))]
+        # the reported population: the best distinct sets met during the whole run (the
+        # elites and their near-optimal relatives), best first
+        ranked = sorted(archive, key=cache.__getitem__)
+        keep = [archive[k] for k in ranked[: max(1, int(o["keep"]))]]
         members = [(problem.pool[np.concatenate([fixed_pos, g])], fitness(g)) for g in keep]
         sets = [set(ids.tolist()) for ids, _ in members]
         overlap = np.array([[len(x & y) / m for y in sets] for x in sets])

@@ -313,10 +313,11 @@ def _auto_features(
     A pilot of ``max(2000, 10 m)`` chain rows (at most 10000; uniform, without replacement) is
     thinned to ``min(m, pilot distinct rows / 10, 400)`` points with greedy selection and
     the chosen weights under ``_AUTO_DRAWS`` independent feature draws; each draw's selection is
-    judged by the *other* draws too. Doubling stops at the first ``D`` where the draws agree:
-    the mean relative gap between a selection's own MMD estimate and the other draws'
-    estimates is at most ``features_tol`` (or at the memory / ``_AUTO_MAX`` cap). The gap
-    measures both the noise of the estimate and how much the optimiser fitted that noise.
+    judged by the *other* draws too. Doubling stops at the first ``D`` where (a) the draws
+    agree: the mean relative gap between a selection's own MMD estimate and the other draws'
+    estimates is at most ``features_tol`` (the gap measures both the noise of the estimate
+    and how much the optimiser fitted that noise), and (b) the cross-judged MMD changed by at
+    most ``features_tol`` (relative) from ``D / 2``; or at the memory / ``_AUTO_MAX`` cap.
     """
     n_pilot = min(prep.n_finite, max(_AUTO_PILOT, 10 * m), 5 * _AUTO_PILOT)
     pick = np.sort(rng.choice(prep.n_finite, size=n_pilot, replace=False))
@@ -332,6 +333,7 @@ def _auto_features(
         n_feat *= 2
     history: list[dict[str, Any]] = []
     chosen = levels[-1]
+    previous = None
     for li, n_feat in enumerate(levels):
         phis, mus, sels = [], [], []
         for _ in range(_AUTO_DRAWS):
@@ -375,12 +377,15 @@ def _auto_features(
             "gap": gap,
             "spread": float((max(cross) - min(cross)) / honest) if honest > 0 else 0.0,
         }
+        if previous is not None:
+            entry["change"] = float(abs(honest - previous) / max(honest, 1e-300))
         history.append(entry)
         if progress is not None:
             progress(li + 1, len(levels), "auto features")
-        if gap <= s.features_tol:
+        if gap <= s.features_tol and entry.get("change", np.inf) <= s.features_tol:
             chosen = n_feat
             break
+        previous = honest
     return chosen, history
 
 
@@ -653,7 +658,8 @@ def thin(
     n_features : int or "auto"
         Number of random frequencies ``D`` (the feature vector has ``2 D`` entries); "auto"
         doubles from 64 until independent feature draws agree on the pilot MMD to
-        within ``features_tol`` (relative).
+        within ``features_tol`` (relative) and that MMD changed by at most ``features_tol``
+        since the previous doubling (see the report's ``auto_features_history``).
     nonfinite : {"drop", "raise"}
         Rows with NaN/inf are dropped and counted, or refused.
     standardise : bool
