@@ -2,8 +2,8 @@
 
 A model is named ``"module:function"`` and is either
 
-* a forward model ``f(theta, inputs) -> predictions`` (``f(theta)`` when there are no
-  inputs) compared with observations through a likelihood (Gaussian or Student t, with a
+* a forward model ``f(theta, inputs) -> predictions`` (with no inputs: ``f(theta, None)``,
+  or ``f(theta)`` when the function takes one argument) compared with observations through a likelihood (Gaussian or Student t, with a
   known noise scale, per-observation scales, or a scale estimated as an extra parameter),
 * or a full log density ``g(theta) -> float`` (the prior already included by the user; the
   priors' bounds still restrict the support).
@@ -102,6 +102,16 @@ def _describe(func: Callable[..., Any]) -> str:
     return f"{mod}:{name}"
 
 
+def _accepts(func: Callable[..., Any], n_args: int) -> bool:
+    try:
+        inspect.signature(func).bind(*([None] * n_args))
+    except TypeError:
+        return False
+    except ValueError:
+        return True  # no signature to inspect (some builtins): assume it fits
+    return True
+
+
 def _check_signature(func: Callable[..., Any], n_args: int, label: str) -> None:
     try:
         sig = inspect.signature(func)
@@ -163,14 +173,20 @@ class LogPosterior:
         if x.ndim != 2 or x.shape[1] != self.d:
             raise ValueError(f"parameter rows must have shape (k, {self.d}), got {x.shape}")
         out = self.priors.logpdf(x)
-        inside = np.flatnonzero(np.isfinite(out))
-        if inside.size:
-            ll = self._evaluate(x[inside])
-            self.n_evals += int(inside.size)
+        finite = np.isfinite(out)
+        all_inside = bool(finite.all())
+        inside = None if all_inside else np.flatnonzero(finite)
+        if all_inside or inside.size:  # type: ignore[union-attr]
+            ll = self._evaluate(x if all_inside else x[inside])
+            self.n_evals += len(ll)
             nonfinite = ~np.isfinite(ll)  # outside the model's domain: see module notes
-            self.n_nonfinite += int(np.count_nonzero(nonfinite))
-            ll = np.where(nonfinite, -np.inf, ll)
-            out[inside] = out[inside] + ll
+            if nonfinite.any():
+                self.n_nonfinite += int(np.count_nonzero(nonfinite))
+                ll = np.where(nonfinite, -np.inf, ll)
+            if all_inside:
+                out += ll
+            else:
+                out[inside] += ll
         return out
 
 
@@ -274,14 +290,16 @@ def _make_caller(
     probe: np.ndarray,
 ) -> tuple[Callable[[np.ndarray], np.ndarray], bool]:
     """Return (rows (k, p) -> outputs (k, *out_shape), vectorised?)."""
-    args = () if inputs is None else (inputs,)
+    # f(theta, inputs); with no inputs, f(theta, None) or f(theta), whichever fits.
+    args: tuple[Any, ...] = (inputs,)
+    if inputs is None and not _accepts(func, 2) and _accepts(func, 1):
+        args = ()
     _check_signature(func, 1 + len(args), label)
     kind = "predictions" if out_shape else "log density"
 
     def single(theta: np.ndarray) -> np.ndarray:
         try:
-            with np.errstate(all="ignore"):
-                out = np.asarray(func(theta, *args), dtype=np.float64)
+            out = np.asarray(func(theta, *args), dtype=np.float64)
         except Exception as exc:  # noqa: BLE001 - report any failure of user code with theta
             raise ValueError(
                 f"model {label} failed at theta={theta.tolist()}: {type(exc).__name__}: {exc}"
@@ -294,7 +312,11 @@ def _make_caller(
         return out.reshape(out_shape)
 
     def loop(x: np.ndarray) -> np.ndarray:
-        return np.stack([single(row) for row in x]) if len(x) else np.empty((0, *out_shape))
+        out = np.empty((len(x), *out_shape))
+        with np.errstate(all="ignore"):  # non-finite output is handled by the caller
+            for k in range(len(x)):
+                out[k] = single(x[k])
+        return out
 
     def batch(x: np.ndarray) -> np.ndarray:
         try:
@@ -363,8 +385,8 @@ def build_log_posterior(
         One per parameter (see :class:`~winnow.tasks.sampling.Prior`), in the order of
         ``theta``.
     forward : callable, optional
-        ``f(theta, inputs) -> predictions`` of shape (n_obs,) (``f(theta)`` when ``inputs``
-        is None); vectorised: ``(k, p) -> (k, n_obs)``.
+        ``f(theta, inputs) -> predictions`` of shape (n_obs,) (with ``inputs`` None a
+        one-argument ``f(theta)`` is accepted too); vectorised: ``(k, p) -> (k, n_obs)``.
     inputs : any, optional
         Passed unchanged as the second argument of ``forward`` (e.g. a dict of arrays).
     observations : array_like, shape (n_obs,)
@@ -431,8 +453,10 @@ def build_log_posterior(
     cols = _model_columns(ps, param_names, exclude=noise_col)
     caller, vec = _make_caller(forward, label, inputs, y.shape, vectorised, _probe_rows(ps, cols))
 
+    identity = cols == list(range(ps.d))
+
     def evaluate_forward(x: np.ndarray) -> np.ndarray:
-        pred = caller(x[:, cols])
+        pred = caller(x if identity else x[:, cols])
         s = fixed_sigma[None, :] if fixed_sigma is not None else x[:, [noise_col]]
         with np.errstate(all="ignore"):
             return loglik(pred - y, s)

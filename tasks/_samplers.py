@@ -147,6 +147,7 @@ class AdaptiveMetropolis(Move):
     target_acceptance = 0.234  # Roberts, Gelman & Gilks (1997), common practice
     epsilon = 1e-10  # relative regularisation of C_t (Haario et al. 2001: eps > 0 small)
     restarts = (0.1, 0.25, 0.5)  # fractions of the burn-in where C_t starts afresh
+    refresh = 10  # iterations between Cholesky factorisations of C_t
 
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
         super().__init__(d, n_chains, initial_scale)
@@ -158,6 +159,7 @@ class AdaptiveMetropolis(Move):
             "mean": np.zeros((n_chains, d)),
             "m2": np.zeros((n_chains, d, d)),
             "c0": np.repeat(c0[None], n_chains, axis=0),
+            "chol": np.zeros((n_chains, d, d)),
             "log_lambda": np.zeros(n_chains),
             "steps": np.zeros(n_chains),
         }
@@ -192,12 +194,18 @@ class AdaptiveMetropolis(Move):
         mean = mean + delta / n[:, None]
         st["mean"][i] = mean
         st["m2"][i] = st["m2"][i] + delta[:, :, None] * (x - mean)[:, None, :]
-        scale = self.s_d * np.exp(2.0 * st["log_lambda"][i])  # lambda acts on the std dev
-        # All chains advance together, so they share the count.
-        cov = st["c0"][i] if n[0] <= self.t0 else self._empirical(i)
-        chol = _cholesky(cov * scale[:, None, None])
+        # All chains advance together, so they share the count. The Cholesky factor of the
+        # covariance is refreshed every `refresh` steps (and when C_0 gives way to C_t):
+        # the running statistics still take every draw; this only saves the O(d^3) work.
+        c = int(n[0])
+        if c == 1:
+            st["chol"][i] = _cholesky(st["c0"][i])
+        elif c > self.t0 and (c == self.t0 + 1 or c % self.refresh == 0):
+            st["chol"][i] = _cholesky(self._empirical(i))
+        sqrt_scale = np.sqrt(self.s_d) * np.exp(st["log_lambda"][i])  # lambda on the std dev
         z = rng.standard_normal(x.shape)
-        return x + (chol @ z[:, :, None])[:, :, 0], np.zeros(len(x))
+        step = np.einsum("kij,kj->ki", st["chol"][i], z) * sqrt_scale[:, None]
+        return x + step, np.zeros(len(x))
 
     def _empirical(self, i: slice | np.ndarray) -> np.ndarray:
         """``C_t + eps I`` of the chains ``i`` (eps relative to the mean variance)."""

@@ -149,27 +149,45 @@ def _starting_points(
 
 
 def _reset_strays(
-    u: np.ndarray, lpu: np.ndarray, lpx: np.ndarray, x: np.ndarray, rng: np.random.Generator
+    u: np.ndarray,
+    lpu: np.ndarray,
+    lpx: np.ndarray,
+    x: np.ndarray,
+    target: _Target,
+    scale: np.ndarray,
+    rng: np.random.Generator,
 ) -> None:
-    """Move stray ensemble walkers onto good ones (during burn-in only).
+    """Bring stray ensemble walkers back (during burn-in only).
 
     An ensemble walker can be caught far out in a tail where the others' positions give it
-    no useful direction (e.g. along a bound mapped to infinity), and then pulls the whole
-    sample off. A walker whose log density is below the best one by more than the
-    1 - 1e-6 quantile of chi^2_d / 2 (what a Gaussian posterior would allow) is moved to the
-    position of a randomly chosen walker that is not. Done only while the draws are
-    discarded as burn-in, so the kept draws are untouched (common practice for ensemble
-    samplers; not part of Goodman & Weare 2010).
+    no useful direction (e.g. along a bound mapped to infinity), and differences between
+    walkers scattered over the prior can be far too large for a narrow posterior. A walker
+    whose log density is below the best one by more than the 1 - 1e-6 quantile of
+    chi^2_d / 2 (what a Gaussian posterior would allow) is a stray. With at least d + 1 good
+    walkers each stray moves to the position of a random good one; otherwise the strays are
+    re-drawn in a small Gaussian ball (1e-3 of the prior scale) around the best walker, as
+    ensemble samplers are commonly started. Done only while the draws are discarded as
+    burn-in, so the kept draws are untouched (common practice; not part of Goodman & Weare
+    2010 or ter Braak 2006).
     """
     from scipy import stats
 
-    gap = 0.5 * float(stats.chi2.isf(1e-6, u.shape[1]))
+    d = u.shape[1]
+    gap = 0.5 * float(stats.chi2.isf(1e-6, d))
     stray = lpu < lpu.max() - gap
     good = np.flatnonzero(~stray)
-    if not stray.any() or good.size < stray.sum():
+    if not stray.any():
         return
-    src = good[rng.integers(good.size, size=int(stray.sum()))]
-    u[stray], lpu[stray], lpx[stray], x[stray] = u[src], lpu[src], lpx[src], x[src]
+    if good.size >= d + 1:
+        src = good[rng.integers(good.size, size=int(stray.sum()))]
+        u[stray], lpu[stray], lpx[stray], x[stray] = u[src], lpu[src], lpx[src], x[src]
+        return
+    best = u[int(np.argmax(lpu))]
+    ball = best + 1e-3 * scale * rng.standard_normal((int(stray.sum()), d))
+    lu, lx, xb = target(ball)
+    ok = np.isfinite(lu)
+    idx = np.flatnonzero(stray)[ok]
+    u[idx], lpu[idx], lpx[idx], x[idx] = ball[ok], lu[ok], lx[ok], xb[ok]
 
 
 def _rng_to_text(rng: np.random.Generator) -> str:
@@ -337,7 +355,7 @@ def sample(
             if not adapting:
                 accepted[g] += acc
         if t in reset_at:
-            _reset_strays(u, lpu, lpx, x, gen)
+            _reset_strays(u, lpu, lpx, x, target, move.initial_scale, gen)
         if t >= n_burn and (t - n_burn) % thin == 0:
             kept[:, filled] = x
             kept_lp[:, filled] = lpx
