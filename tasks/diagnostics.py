@@ -40,7 +40,7 @@ from typing import Literal
 
 import numpy as np
 import numpy.typing as npt
-from scipy import special, stats
+from scipy import special
 
 from winnow.tasks.records import Chain, Diagnostics, ParameterDiagnostics
 
@@ -103,7 +103,9 @@ def _rank_normalise(a: np.ndarray) -> np.ndarray:
     """Eq. (14) of Vehtari et al. (2021), over all chains and draws of each parameter."""
     m, n, d = a.shape
     flat = a.reshape(m * n, d)
-    r = stats.rankdata(flat, method="average", axis=0)
+    from scipy.stats import rankdata  # imported here: scipy.stats is slow to import
+
+    r = rankdata(flat, method="average", axis=0)
     z = special.ndtri((r - 0.375) / (m * n + 0.25))
     return z.reshape(m, n, d)
 
@@ -261,8 +263,9 @@ def mcse_quantile(draws: npt.ArrayLike, prob: float) -> float | np.ndarray:
     size = flat.shape[0]
     out = np.empty(a.shape[2])
     for j in range(a.shape[2]):
-        lo_p, hi_p = stats.beta.ppf(
-            [0.1586553, 0.8413447], s[j] * prob + 1.0, s[j] * (1.0 - prob) + 1.0
+        # Quantiles of Beta(a, b): the inverse of the regularised incomplete beta function.
+        lo_p, hi_p = special.betaincinv(
+            s[j] * prob + 1.0, s[j] * (1.0 - prob) + 1.0, np.array([0.1586553, 0.8413447])
         )
         # 1-based ranks floor(a1 N) and ceil(a2 N), kept inside 1..N (rounding outwards
         # so that the interval is not understated).
