@@ -32,6 +32,7 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import replace
 from typing import Any, Literal
 
 import numpy as np
@@ -397,14 +398,7 @@ def sample(
         "seconds": seconds,
         "resumed_at": int(resume["iteration"]) if resume is not None else 0,
     }
-    messages = diag.messages
-    if n_nonfinite:
-        messages = (
-            *messages,
-            f"note: the model gave NaN or infinite output at {n_nonfinite} of {n_evals} "
-            "evaluations; those points were treated as log density -inf",
-        )
-    diag = type(diag)(**{**diag.__dict__, "details": details, "messages": messages})
+    diag = replace(diag, details=details)
     return Chain(
         samples=kept.reshape(-1, d),
         names=ps.names,
