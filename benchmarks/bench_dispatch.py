@@ -116,6 +116,7 @@ def main() -> None:
             if states != {"succeeded"} or len(outcomes) != n:
                 raise SystemExit(f"{label}: unexpected states {states}")
             rows.append((label, slots, seconds, bare))
+            print(f"  {label}: {seconds:.2f} s for {n} runs", file=sys.stderr, flush=True)
 
         timed("(a) LocalRunner, 1 slot", 1, lambda s: dispatch(s, runner=LocalRunner(1)))
         timed("(a) LocalRunner, 2 slots", 2, lambda s: dispatch(s, runner=LocalRunner(2)))

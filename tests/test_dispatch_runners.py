@@ -209,3 +209,18 @@ def test_make_runner_shapes(value, cls, attrs):
 def test_make_runner_rejects_other_shapes(value, match):
     with pytest.raises((ValueError, TypeError), match=match):
         make_runner(value, concurrency=2)
+
+
+def test_dask_runner_starts_and_closes_its_own_cluster(tmp_path):
+    pytest.importorskip("distributed")
+    # In-process workers keep this quick; the contract test above uses worker processes.
+    runner = make_runner(
+        {"dask": {"local_cluster": {"n_workers": 1, "processes": False}}}, concurrency=1
+    )
+    specs = [s for s in _specs(tmp_path) if "p000000" in s.run_id or "p000001" in s.run_id]
+    outs = dispatch(specs, runner=runner, outputs=["result.txt"])
+    assert [o.state for o in outs] == ["succeeded", "failed"]
+    from distributed import Client
+
+    with pytest.raises(ValueError, match="No clients found"):
+        Client.current()  # nothing left registered as the default client
