@@ -154,6 +154,7 @@ class AdaptiveMetropolis(Move):
         self.t0 = max(100, 10 * d)
         self.s_d = 2.4**2 / d
         c0 = np.diag((0.1 * self.initial_scale) ** 2)
+        self._floor = (1e-6 * self.initial_scale) ** 2
         self.state = {
             "count": np.zeros(n_chains),
             "mean": np.zeros((n_chains, d)),
@@ -183,6 +184,9 @@ class AdaptiveMetropolis(Move):
             ready = st["count"][i] > self.t0
             if np.any(ready):
                 st["c0"][i] = np.where(ready[:, None, None], self._empirical(i), st["c0"][i])
+                # lambda was tuned to the old covariance: tune afresh around s_d C_t.
+                st["log_lambda"][i] = np.where(ready, 0.0, st["log_lambda"][i])
+                st["steps"][i] = np.where(ready, 0.0, st["steps"][i])
             st["count"][i] = 0.0
             st["mean"][i] = 0.0
             st["m2"][i] = 0.0
@@ -212,7 +216,9 @@ class AdaptiveMetropolis(Move):
         n = self.state["count"][i]
         cov = self.state["m2"][i] / np.maximum(n - 1.0, 1.0)[:, None, None]
         diag = np.einsum("kii->ki", cov)  # a writeable view of the diagonals
-        diag += self.epsilon * np.maximum(diag.sum(axis=1) / self.d, 1e-300)[:, None]
+        # eps I relative to the mean variance, floored at 1e-12 of the prior variances so that
+        # a chain that rejected everything for a while still gets a usable proposal.
+        diag += self.epsilon * (diag.sum(axis=1) / self.d)[:, None] + self._floor
         return cov
 
 
