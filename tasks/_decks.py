@@ -611,6 +611,9 @@ def render_run(
 
     # --- assemble under a temporary name, then move into place -------------------------------
     run_root.mkdir(parents=True, exist_ok=True)
+    for stale in run_root.glob(f".{rid}.partial-*"):
+        # Left by a render that was killed before its folder was moved into place.
+        shutil.rmtree(stale, ignore_errors=True)
     tmp_dir = Path(tempfile.mkdtemp(prefix=f".{rid}.partial-", dir=run_root))
     try:
         for dest, data in rendered.items():

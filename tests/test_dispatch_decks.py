@@ -288,8 +288,11 @@ def test_rerender_keeps_finished_run_and_cleans_the_rest(tpl, tmp_path):
     assert not (spec.run_dir / "winnow-outcome.json").exists()
 
     (spec.run_dir / "partial.out").write_text("half")  # killed mid-run: no outcome file
+    stale = tmp_path / "runs" / f".{spec.run_id}.partial-x1"  # a render killed mid-way
+    stale.mkdir()
     _render(tpl, tmp_path / "runs")
     assert not (spec.run_dir / "partial.out").exists()
+    assert not stale.exists()
     assert json.loads((spec.run_dir / MANIFEST_NAME).read_text())["key"] == spec.key
 
 
