@@ -135,18 +135,24 @@ class AdaptiveMetropolis(Move):
     ``C_0 = diag(0.1 * prior scale)^2``.
 
     The global factor ``lambda_i`` (Andrieu & Thoms 2008, Algorithm 4) is adapted by a
-    Robbins-Monro step towards acceptance 0.234 during burn-in only and then frozen; it
-    lets a chain started far out in the prior get moving quickly. The running covariance is
-    restarted at 10 %, 25 % and 50 % of the burn-in (the last estimate becomes the fixed
-    covariance of the next ``t0`` steps), so that the long walk in from an over-dispersed
-    start does not inflate the proposal for thousands of draws. With no burn-in neither
-    is done, which is the plain method of Haario et al.
+    Robbins-Monro step towards acceptance 0.234 with a decreasing gain ``t^-0.6`` (a
+    diminishing adaptation, as is that of ``C_t``).
+
+    Burn-in schedule (a practical addition; the draws it touches are discarded): for the
+    first quarter of the burn-in the chain walks in from its over-dispersed start with the
+    fixed ``C_0`` and only ``lambda`` adapts, because the covariance of a trajectory points
+    along the path taken rather than along the posterior. ``C_t`` is then learnt, and
+    restarted at 50 % and 75 % of the burn-in (the last estimate becomes the fixed
+    covariance of the next ``t0`` steps and ``lambda`` is tuned afresh), so that what is
+    left of the walk-in does not distort the proposal for thousands of draws. With no
+    burn-in none of this happens, which is the plain method of Haario et al.
     """
 
     name = "adaptive_metropolis"
     target_acceptance = 0.234  # Roberts, Gelman & Gilks (1997), common practice
     epsilon = 1e-10  # relative regularisation of C_t (Haario et al. 2001: eps > 0 small)
-    restarts = (0.1, 0.25, 0.5)  # fractions of the burn-in where C_t starts afresh
+    learn_from = 0.25  # fraction of the burn-in before which C_t is not learnt
+    restarts = (0.5, 0.75)  # fractions of the burn-in where C_t starts afresh
     refresh = 10  # iterations between Cholesky factorisations of C_t
 
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
@@ -175,7 +181,7 @@ class AdaptiveMetropolis(Move):
         st = self.state
         # All chains at once (the usual case): plain slices avoid fancy-index copies.
         i = slice(None) if len(ctx.index) == self.n_chains else ctx.index
-        if ctx.adapting and ctx.accept_prob is not None:
+        if ctx.accept_prob is not None and (ctx.adapting or ctx.burn_in > 0):
             # Robbins-Monro: log lambda += gamma_t (alpha - alpha*), gamma_t = t^-0.6
             gamma = (st["steps"][i] + 1.0) ** -0.6
             st["log_lambda"][i] += gamma * (ctx.accept_prob - self.target_acceptance)
@@ -190,6 +196,15 @@ class AdaptiveMetropolis(Move):
             st["count"][i] = 0.0
             st["mean"][i] = 0.0
             st["m2"][i] = 0.0
+        if ctx.adapting and ctx.iteration < int(self.learn_from * ctx.burn_in):
+            # Walking in from an over-dispersed start: a trajectory's covariance points
+            # along the path taken, not along the posterior, so only lambda adapts here.
+            sqrt_scale = np.sqrt(self.s_d) * np.exp(st["log_lambda"][i])
+            if ctx.iteration == 0:
+                st["chol"][i] = _cholesky(st["c0"][i])
+            z = rng.standard_normal(x.shape)
+            step = np.einsum("kij,kj->ki", st["chol"][i], z) * sqrt_scale[:, None]
+            return x + step, np.zeros(len(x))
         # Haario et al. (2001), Eq. (3): recursive mean and covariance of x_0 .. x_t.
         n = st["count"][i] + 1.0
         st["count"][i] = n
