@@ -90,6 +90,34 @@ def register(app: typer.Typer) -> None:
             raise SystemExit(1) from None
         _print_result(result)
 
+    @app.command("rerun")
+    @guarded
+    def rerun(
+        store: Annotated[Path, typer.Argument(help="Run store (HDF5) of the study.")],
+        replace: Annotated[
+            bool,
+            typer.Option(
+                "--replace",
+                help="Instead of running failed points again, run the best substitutes for "
+                "them given the surviving points.",
+            ),
+        ] = False,
+    ) -> None:
+        """Run again only the failed, timed-out and unfinished runs of the latest revision."""
+        if not store.is_file():
+            raise UsageError(f"STORE: run store not found: {store}")
+        from winnow.tasks.store import check
+
+        report = check(store)  # also refuses a file that is not a run store (exit 2)
+        if not report.ok:
+            raise UsageError(
+                f"STORE: {store} is damaged; see `winnow check {store}`:\n  "
+                + "\n  ".join(report.problems)
+            )
+        from winnow.flows.rerun import rerun_flow
+
+        _print_result(rerun_flow(str(store), replace=replace))
+
     @app.command("validate")
     @guarded
     def validate(config: Annotated[Path, typer.Argument(help="Study config (YAML).")]) -> None:

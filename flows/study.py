@@ -37,7 +37,7 @@ from winnow.tasks.prefect_tasks import (
 )
 from winnow.tasks.records import RunOutcome
 
-__all__ = ["StudyResult", "study_flow", "study_inputs"]
+__all__ = ["StudyResult", "study_flow", "study_inputs", "summarise"]
 
 
 @dataclass
@@ -236,24 +236,33 @@ def study_flow(
             values, estimates = collect_task(config, base, chain, selection, specs, outcomes)
             store.write_results(rev, values, estimates)
 
-    counts: dict[str, int] = {}
-    for o in outcomes.values():
-        counts[o.state] = counts.get(o.state, 0) + 1
-    result = StudyResult(
-        store=str(store_path),
-        revision=rev,
-        counts=counts,
-        reused=sum(1 for o in outcomes.values() if o.reused_from),
-        estimates={e.name: _estimate_summary(e) for e in estimates},
-        up_to_date=up_to_date,
-    )
+    result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
     result.report = str(_report(store_path, rev, config.study.name))
+    counts = result.counts
     if counts.get("succeeded", 0) == 0:
         raise RuntimeError(
             f"study {config.study.name} {rev}: no run succeeded ({counts}); every outcome is "
             f"recorded in {store_path} -- see `winnow status {store_path}`"
         )
     return result
+
+
+def summarise(
+    store_path: Path, rev: str, specs, outcomes, estimates, *, up_to_date: bool = False
+) -> StudyResult:
+    """Counts of the chosen points' run states, reuse and estimates of one revision."""
+    counts: dict[str, int] = {}
+    chosen = [outcomes[s.run_id] for s in specs if s.run_id in outcomes]
+    for o in chosen:
+        counts[o.state] = counts.get(o.state, 0) + 1
+    return StudyResult(
+        store=str(store_path),
+        revision=rev,
+        counts=counts,
+        reused=sum(1 for o in chosen if o.reused_from),
+        estimates={e.name: _estimate_summary(e) for e in estimates},
+        up_to_date=up_to_date,
+    )
 
 
 def _observation_table(config: StudyConfig, base: Path) -> dict[str, Any] | None:

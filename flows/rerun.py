@@ -1,0 +1,119 @@
+"""Rerun only what failed, or replace points that failed for good.
+
+:func:`rerun_flow` works on the latest revision of a run store, from what the store records:
+
+* by default it runs again, with the same decks, every run that did not succeed (failed,
+  timed out, output missing, never finished), then collects again;
+* with ``replace=True`` it asks the thin stage for the best substitutes of the points whose
+  runs did not succeed, given the surviving points (:func:`winnow.tasks.thinning.replace`),
+  renders and runs only the substitutes, and collects with the re-solved weights. The
+  replaced runs stay recorded in the store, with a message naming their substitute.
+
+Succeeded runs are never run again.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import yaml
+from prefect import flow, get_run_logger
+
+from winnow.flows.study import StudyResult, _dispatch, _report, summarise
+from winnow.tasks.config import parse_config
+from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task
+from winnow.tasks.records import RunOutcome, RunSpec
+
+__all__ = ["rerun_flow"]
+
+
+@flow(
+    name="winnow-rerun",
+    flow_run_name="rerun-{store}",
+    description="Run again only the failed, timed-out and unfinished runs of a study's latest "
+    "revision, or replace the points that failed for good.",
+)
+def rerun_flow(store: str, replace: bool = False) -> StudyResult:
+    """Rerun or replace the unsuccessful runs of the latest revision of ``store``."""
+    from winnow.tasks.dispatch import select_for_rerun
+    from winnow.tasks.store import RunStore
+    from winnow.tasks.thinning import replace as replace_points
+
+    log = get_run_logger()
+    store_path = Path(store).resolve()
+    with RunStore.open_for_write(store_path) as w:
+        rev = w.latest_revision()
+        done = w.stages_done(rev) if rev else set()
+        if rev is None or not {"chain", "selection"} <= done:
+            raise ValueError(
+                f"{store_path}: nothing to rerun: the latest revision has no selection yet; "
+                "run the study with `winnow run CONFIG`"
+            )
+        text = w.read_config_text(rev)
+        config = parse_config(yaml.safe_load(text), source=f"{store_path} ({rev} config)")
+        details = w.read_input_details(rev)
+        base = Path(details["config"]["path"]).parent if "config" in details else Path.cwd()
+        chain = w.read_chain(rev)
+        selection = w.read_selection(rev)
+        if "runs" in done:
+            specs, stored = w.read_runs(rev)
+        else:  # killed before the runs were recorded: the run folders' journals know
+            specs, stored = prepare_runs_task(config, base, chain, selection), []
+        outcomes: dict[str, RunOutcome] = {o.run_id: o for o in stored}
+        pending = set(select_for_rerun(outcomes))
+        pending |= {s.run_id for s in specs if s.run_id not in outcomes}
+        current = {int(i) for i in selection.indices}
+        pending = {rid for rid in pending if _spec(specs, rid).point_index in current}
+        if not pending:
+            log.info("%s %s: every run already succeeded; nothing to rerun", store_path, rev)
+        elif not replace:
+            todo = [s for s in specs if s.run_id in pending]
+            log.info("rerunning %d run(s) with their recorded decks", len(todo))
+            outcomes.update(_dispatch(config, base, todo, w.successful_runs_by_key(), log))
+        else:
+            positions = [
+                k
+                for k, i in enumerate(selection.indices)
+                if _spec_of_point(specs, int(i)).run_id in pending
+            ]
+            new_sel = replace_points(chain.samples, selection, positions, by="position")
+            known_points = {s.point_index: s for s in specs}
+            fresh = [k for k, i in enumerate(new_sel.indices) if int(i) not in known_points]
+            new_specs = prepare_runs_task(config, base, chain, new_sel, positions=fresh)
+            log.info(
+                "replacing %d point(s) that did not succeed by %d substitute(s)",
+                len(positions),
+                len(new_specs),
+            )
+            w.write_selection(rev, new_sel)
+            outcomes.update(_dispatch(config, base, new_specs, w.successful_runs_by_key(), log))
+            for k in positions:
+                old = _spec_of_point(specs, int(selection.indices[k]))
+                o = outcomes[old.run_id]
+                outcomes[old.run_id] = dataclasses.replace(
+                    o, message=(o.message + "; " if o.message else "") + "replaced by rerun"
+                )
+            by_point = {s.point_index: s for s in (*specs, *new_specs)}
+            selected = [
+                dataclasses.replace(by_point[int(i)], weight=float(wt))
+                for i, wt in zip(new_sel.indices, new_sel.weights, strict=True)
+            ]
+            replaced = [s for s in specs if s.point_index not in {int(i) for i in new_sel.indices}]
+            specs = selected + replaced
+            selection = new_sel
+        w.write_runs(rev, specs, [outcomes[s.run_id] for s in specs if s.run_id in outcomes])
+        in_selection = [_spec_of_point(specs, int(i)) for i in selection.indices]
+        values, estimates = collect_task(config, base, chain, selection, in_selection, outcomes)
+        w.write_results(rev, values, estimates)
+    result = summarise(store_path, rev, in_selection, outcomes, estimates)
+    result.report = str(_report(store_path, rev, config.study.name))
+    return result
+
+
+def _spec(specs: list[RunSpec], run_id: str) -> RunSpec:
+    return next(s for s in specs if s.run_id == run_id)
+
+
+def _spec_of_point(specs: list[RunSpec], point_index: int) -> RunSpec:
+    return next(s for s in specs if s.point_index == point_index)
