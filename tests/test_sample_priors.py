@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from winnow.tasks._priors import Prior, PriorSet, as_prior_set
@@ -141,3 +143,20 @@ def test_prior_only_sampling_recovers_prior_means():
         assert abs(p.mean - exact[j]) < 5 * p.mcse_mean, (name, p.mean, exact[j])
     assert chain.samples[:, 2].min() >= -5 and chain.samples[:, 2].max() <= -1
     assert chain.samples[:, 1].min() >= -0.5
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    low=st.floats(-1e3, 1e3),
+    width=st.floats(1e-3, 1e3),
+    u=st.floats(-30, 30),
+)
+def test_bounded_transform_stays_on_support_and_inverts(low, width, u):
+    # property (common practice for constraint transforms): x(u) lies in [low, high] and
+    # u(x(u)) = u where x is not rounded onto a bound
+    ps = as_prior_set([{"name": "p", "dist": "uniform", "low": low, "high": low + width}])
+    x = ps.to_user(np.array([[u]]))
+    assert ps.low[0] <= x[0, 0] <= ps.high[0]
+    if ps.low[0] < x[0, 0] < ps.high[0] and abs(u) < 15:
+        assert ps.to_unconstrained(x)[0, 0] == pytest.approx(u, abs=1e-6 * max(1.0, width))
+    assert np.isfinite(ps.log_jacobian(np.array([[u]]))[0])
