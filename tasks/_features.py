@@ -196,6 +196,7 @@ def mean_embedding(
     counts: np.ndarray,
     *,
     chunk_size: int,
+    workers: int = 1,
     progress: Progress | None = None,
 ) -> np.ndarray:
     """Weighted mean of the features of ``x[rows]``, streamed in chunks.
@@ -210,7 +211,9 @@ def mean_embedding(
     counts : ndarray, shape (k,)
         Multiplicity of each embedded row.
     chunk_size : int
-        Rows per chunk: memory is ``chunk_size * 2 D`` feature values at a time.
+        Rows per chunk: memory is ``workers * chunk_size * 2 D`` feature values at a time.
+    workers : int
+        Threads computing chunks (the result is bit-identical for any number).
 
     Returns
     -------
@@ -218,12 +221,34 @@ def mean_embedding(
         ``sum_i counts_i phi(x_i) / sum_i counts_i``, accumulated in float64.
     """
     n = x.shape[0] if rows is None else rows.shape[0]
-    acc = np.zeros(fmap.width, dtype=np.float64)
-    buf = np.empty((min(chunk_size, max(n, 1)), fmap.width), dtype=fmap.dtype)
-    for a, b in _chunks(n, chunk_size):
+    spans = list(_chunks(n, chunk_size))
+    workers = max(1, min(int(workers), len(spans)))
+    rows_per_buf = min(chunk_size, max(n, 1))
+    bufs = [np.empty((rows_per_buf, fmap.width), dtype=fmap.dtype) for _ in range(workers)]
+
+    def chunk_sum(k: int, buf: np.ndarray) -> np.ndarray:
+        a, b = spans[k]
         part = x[a:b] if rows is None else x[rows[a:b]]
         phi = fmap(part, out=buf[: b - a], scaled=False)
-        acc += counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS, then float64
-        if progress is not None:
-            progress(b, n, "mean embedding")
+        return counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS
+
+    acc = np.zeros(fmap.width, dtype=np.float64)
+    if workers == 1:
+        for k in range(len(spans)):
+            acc += chunk_sum(k, bufs[0])
+            if progress is not None:
+                progress(spans[k][1], n, "mean embedding")
+    else:
+        # numpy releases the GIL in matmul and cos/sin, so threads share the work; each round
+        # computes ``workers`` chunks and adds them in chunk order, so the float64 sum is
+        # bit-identical to the one-thread result
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            for r in range(0, len(spans), workers):
+                ks = range(r, min(r + workers, len(spans)))
+                for part in pool.map(chunk_sum, ks, bufs):
+                    acc += part
+                if progress is not None:
+                    progress(spans[ks[-1]][1], n, "mean embedding")
     return acc / (float(np.sum(counts)) * np.sqrt(fmap.n_features))

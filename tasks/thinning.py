@@ -289,6 +289,7 @@ class _Settings:
     n_candidates: int | None
     features_tol: float
     precision: str
+    workers: int
     method_options: dict[str, Any]
 
 
@@ -466,7 +467,10 @@ def _run(
         kern, d, n_feat, s.feature_map, bandwidth, prep.mean, prep.scale, streams[1], dtype
     )
     chunk = _chunk_rows(s.chunk_size, fmap.width)
-    mu = mean_embedding(fmap, prep.x, prep.rows, prep.counts, chunk_size=chunk, progress=progress)
+    mu = mean_embedding(
+        fmap, prep.x, prep.rows, prep.counts, chunk_size=chunk, workers=s.workers,
+        progress=progress,
+    )  # fmt: skip
     t = lap("mean_embedding", t)
 
     # candidate pool ---------------------------------------------------------------------------
@@ -548,6 +552,7 @@ def _run(
         "auto_features_history": auto_history,
         "feature_columns": fmap.width,
         "precision": s.precision,
+        "workers": s.workers,
         "n_candidates": int(pool.size),
         "n_fixed": int(fixed.size),
         "multiplicity": prep.counts[ids].tolist(),
@@ -590,6 +595,7 @@ def _settings(
     n_candidates: Any,
     features_tol: Any,
     precision: Any,
+    workers: Any = 2,
     method_options: dict[str, Any],
 ) -> _Settings:
     get_kernel(kernel)
@@ -613,6 +619,7 @@ def _settings(
         else _validate_int("n_candidates", n_candidates, 1),
         features_tol=float(features_tol),
         precision=_validate_choice("precision", precision, ("single", "double")),
+        workers=_validate_int("workers", workers, 1),
         method_options=method_options,
     )
 
@@ -635,6 +642,7 @@ def thin(
     n_candidates: int | str = "auto",
     features_tol: float = 0.1,
     precision: Literal["single", "double"] = "single",
+    workers: int = 2,
     rng: np.random.Generator | int | None = None,
     progress: Progress | None = None,
     **method_options: Any,
@@ -677,6 +685,8 @@ def thin(
         Relative tolerance of the automatic feature count.
     precision : {"single", "double"}
         Precision of feature values (sums are float64 either way).
+    workers : int
+        Threads for the streaming pass over the chain (the result does not depend on it).
     rng : int or Generator, optional
         Seed; the same input, settings and seed give the same selection.
     progress : callable, optional
@@ -736,6 +746,7 @@ def _settings_from(selection: Selection, method: str | None, overrides: dict[str
         n_candidates="auto",
         features_tol=rep.get("auto_features_tol", 0.1),
         precision=rep.get("precision", "single"),
+        workers=rep.get("workers", 2),
     )
     method_options = {k: v for k, v in overrides.items() if k not in opts}
     opts.update({k: v for k, v in overrides.items() if k in opts})

@@ -128,3 +128,24 @@ def test_median_heuristic_against_scipy_pdist():
 def test_unknown_kernel_names_value():
     with pytest.raises(ValueError, match="kernel.*'cosine'"):
         get_kernel("cosine")
+
+
+def test_streamed_mean_embedding_matches_direct_mean_and_thread_count():
+    # oracle: the plain numpy weighted mean of the full feature matrix
+    from winnow.tasks._features import mean_embedding
+
+    rng = np.random.default_rng(6)
+    x = rng.standard_normal((1003, 3)) * [1e-6, 1.0, 1e9]
+    counts = rng.integers(1, 5, size=1003)
+    fmap = draw_feature_map(
+        get_kernel("matern52"), 3, 64, "rff", 0.9, x.mean(0), x.std(0), rng, np.float64
+    )
+    direct = counts @ features_of_rows(fmap, x, None, chunk_size=5000) / counts.sum()
+    one = mean_embedding(fmap, x, None, counts, chunk_size=100)
+    three = mean_embedding(fmap, x, None, counts, chunk_size=100, workers=3)
+    np.testing.assert_allclose(one, direct, rtol=1e-12, atol=1e-14)
+    np.testing.assert_array_equal(one, three)  # bit-identical whatever the thread count
+    rows = np.arange(0, 1003, 2)
+    sub = mean_embedding(fmap, x, rows, counts[rows], chunk_size=64, workers=2)
+    want = counts[rows] @ features_of_rows(fmap, x, rows, chunk_size=5000) / counts[rows].sum()
+    np.testing.assert_allclose(sub, want, rtol=1e-12, atol=1e-14)
