@@ -97,6 +97,7 @@ def main() -> None:
 
     work = Path(tempfile.mkdtemp(prefix="winnow-bench-dispatch-"))
     rows: list[tuple[str, int, float, float]] = []  # label, slots, seconds, bare spawn
+    prefect_rows: list[tuple[str, int, float]] = []  # baselines without a solver
     try:
         t0 = time.perf_counter()
         _render(work / "warm", 5, solver)
@@ -156,6 +157,23 @@ def main() -> None:
                     2,
                     lambda s: dispatch_flow(s, runner={"dask": {"address": addr}}),
                 )
+                # Baseline: Prefect's own cost of a task that does nothing, same task runner.
+                from prefect import flow, task
+                from prefect_dask import DaskTaskRunner
+
+                @task
+                def noop(i: int) -> int:
+                    return i
+
+                @flow(task_runner=DaskTaskRunner(address=addr))
+                def noop_flow(k: int) -> int:
+                    return sum(st.is_completed() for st in noop.map(range(k), return_state=True))
+
+                t = time.perf_counter()
+                noop_flow(n)
+                prefect_rows.append(
+                    ("(c) baseline: no-op Prefect task, Dask", 2, time.perf_counter() - t)
+                )
         if cluster is not None:
             cluster.close()
     finally:
@@ -179,6 +197,12 @@ def main() -> None:
         print(
             f"{label:<36} {slots:>5d} {seconds:>8.2f} {n / seconds:>8.1f} "
             f"{per_run * 1e3:>11.2f} {overhead * 1e3:>12.2f}"
+        )
+    for label, slots, seconds in prefect_rows:
+        per_run = seconds / n
+        print(
+            f"{label:<36} {slots:>5d} {seconds:>8.2f} {n / seconds:>8.1f} "
+            f"{per_run * 1e3:>11.2f} {per_run * slots * 1e3:>12.2f}"
         )
     print()
     print("overhead = wall / runs * slots - bare spawn (slot time each run costs beyond spawning)")

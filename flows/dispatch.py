@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from prefect import flow, task, unmapped
+from prefect.cache_policies import NO_CACHE
 from prefect.futures import as_completed
 from prefect.logging import get_run_logger
 
@@ -83,7 +84,9 @@ def make_task_runner(config_value: Any, *, concurrency: int):
     )
 
 
-@task(task_run_name="run-{spec.run_id}")
+# No Prefect cache: reuse is decided by the run key and the journal (plan_dispatch), and a
+# cached result must never stand in for a solver run.
+@task(task_run_name="run-{spec.run_id}", cache_policy=NO_CACHE)
 def run_point(spec: RunSpec, options: RunOptions) -> Any:
     """Run the solver of one point (journalled in its run folder).
 
