@@ -30,6 +30,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
+
 from winnow.tasks.records import Chain
 
 __all__ = [

@@ -10,6 +10,7 @@ from __future__ import annotations
 import h5py
 import numpy as np
 import pytest
+
 from winnow.tasks.chainfiles import (
     nonfinite_rows,
     read_chain_file,
