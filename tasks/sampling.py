@@ -100,6 +100,7 @@ class _Target:
     def __init__(self, log_posterior: Callable[[np.ndarray], np.ndarray], ps: PriorSet):
         self.f = log_posterior
         self.ps = ps
+        self.clean = isinstance(log_posterior, LogPosterior)
         self.label = getattr(log_posterior, "model", None) or getattr(
             log_posterior, "__qualname__", "log_posterior"
         )
@@ -113,7 +114,8 @@ class _Target:
                 f"log posterior {self.label} returned shape {lp.shape} for {len(u)} rows; "
                 f"expected ({len(u)},)"
             )
-        lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
+        if not self.clean:  # a LogPosterior already returns finite values or -inf
+            lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
         return lp + self.ps.log_jacobian(u), lp, x
 
 
