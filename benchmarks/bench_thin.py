@@ -15,7 +15,8 @@ kernel, median-heuristic bandwidth, standardised coordinates, all chain rows) of
 
 Speed: N = 10^6 rows, d = 10, m = 100 (greedy, simplex weights, auto features) in a separate
 process: wall time, peak resident memory (resource.getrusage), and the ratio to the floor,
-one pass computing the features of every row with the chosen feature count.
+one pass computing the features of every row with the chosen feature count (both with two
+worker threads for the streaming pass).
 
 BLAS runs single-threaded here (OPENBLAS_NUM_THREADS=1 unless set): on a machine shared by
 several jobs, multi-threaded BLAS on small matrices spins and distorts every timing. Times on
@@ -222,8 +223,10 @@ def speed_child(n: int) -> None:
         get_kernel("gaussian"), d, sel.n_features, "orf", sel.bandwidth,
         x.mean(0), x.std(0), rng,
     )  # fmt: skip
+    # with the same two worker threads as thin() uses by default
     t0 = time.perf_counter()
-    mean_embedding(fmap, x, None, np.ones(n), chunk_size=int(max(256, 2**22 // fmap.width)))
+    chunk = int(max(256, 2**22 // fmap.width))
+    mean_embedding(fmap, x, None, np.ones(n), chunk_size=chunk, workers=2)
     floor = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB -> MB (Linux)
     print(json.dumps({

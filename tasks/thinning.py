@@ -47,13 +47,14 @@ import numpy.typing as npt
 from ._features import (
     FEATURE_MAPS,
     FeatureMap,
+    FeatureMapName,
     draw_feature_map,
     features_of_rows,
     mean_embedding,
 )
-from ._kernels import KERNELS, get_kernel, median_heuristic
+from ._kernels import KERNELS, KernelName, get_kernel, median_heuristic
 from ._mmd import ExactMMD, mmd_exact
-from ._selectors import SELECTORS, GreedyState, Problem, Selector, get_selector
+from ._selectors import SELECTORS, GreedyState, MethodName, Problem, Selector, get_selector
 from ._weights import feature_mmd, optimal_weights
 from .records import Chain, Selection
 
@@ -629,11 +630,11 @@ def thin(
     samples: npt.ArrayLike | Chain,
     budget: int,
     *,
-    kernel: str = "gaussian",
+    kernel: KernelName = "gaussian",
     bandwidth: float | None = None,
-    method: str = "greedy",
+    method: MethodName = "greedy",
     weights: WeightsRule = "simplex",
-    feature_map: str = "orf",
+    feature_map: FeatureMapName = "orf",
     n_features: int | str = "auto",
     nonfinite: NonFinite = "drop",
     standardise: bool = True,
@@ -769,7 +770,7 @@ def extend(
     k: int,
     *,
     rng: np.random.Generator | int | None = None,
-    method: str | None = None,
+    method: MethodName | None = None,
     progress: Progress | None = None,
     **options: Any,
 ) -> Selection:
@@ -802,7 +803,7 @@ def replace(
     *,
     by: Literal["index", "position"] = "index",
     rng: np.random.Generator | int | None = None,
-    method: str | None = None,
+    method: MethodName | None = None,
     progress: Progress | None = None,
     **options: Any,
 ) -> Selection:
@@ -852,7 +853,7 @@ def disjoint(
     budget: int | None = None,
     *,
     rng: np.random.Generator | int | None = None,
-    method: str | None = None,
+    method: MethodName | None = None,
     progress: Progress | None = None,
     **options: Any,
 ) -> Selection:
