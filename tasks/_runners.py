@@ -404,7 +404,22 @@ class BatchRunner(Runner):
             return (None, False)
         return status, fields.get("timed_out", "0").strip() == "1"
 
-    def _attempt(self, spec: RunSpec, number: int, options: RunOptions) -> tuple[Attempt, str]:
+    def _cancel_job(self, job_id: str) -> None:
+        if not job_id:
+            return
+        try:
+            subprocess.run(  # noqa: S603 - argv list, never a shell
+                [*self.cancel, job_id],
+                capture_output=True,
+                timeout=60,
+                stdin=subprocess.DEVNULL,
+            )
+        except (OSError, subprocess.SubprocessError):
+            pass
+
+    def _attempt(
+        self, spec: RunSpec, number: int, options: RunOptions, stop: threading.Event
+    ) -> tuple[Attempt, str]:
         run_dir = Path(spec.run_dir)
         started = time.time()
 
@@ -460,22 +475,18 @@ class BatchRunner(Runner):
                 return record(
                     None, False, f"run folder {run_dir} vanished while job {job_id} ran"
                 ), "failed"
+            if stop.is_set():
+                self._cancel_job(job_id)
+                return record(
+                    None, False, f"dispatch interrupted; job {job_id} cancelled"
+                ), "failed"
             if deadline is not None and time.monotonic() > deadline:
-                if job_id:
-                    try:
-                        subprocess.run(  # noqa: S603
-                            [*self.cancel, job_id],
-                            capture_output=True,
-                            timeout=60,
-                            stdin=subprocess.DEVNULL,
-                        )
-                    except (OSError, subprocess.SubprocessError):
-                        pass
+                self._cancel_job(job_id)
                 msg = (
                     f"job {job_id} wrote no completion marker within {self.max_wait:g} s; cancelled"
                 )
                 return record(None, True, msg), "timed_out"
-            time.sleep(self.poll_interval)
+            stop.wait(self.poll_interval)
         if timed_out:
             return record(
                 None, True, f"job {job_id}: killed after {options.timeout:g} s timeout"
@@ -486,14 +497,18 @@ class BatchRunner(Runner):
             return record(status, False, ""), "failed"
         return record(status, False, ""), "succeeded"
 
-    def _run_batch(self, spec: RunSpec, options: RunOptions) -> RunOutcome:
+    def _run_batch(self, spec: RunSpec, options: RunOptions, stop: threading.Event) -> RunOutcome:
         run_dir = Path(spec.run_dir)
         attempts: list[Attempt] = []
         state, message, hashes = "failed", "", {}
         for number in range(1, options.retries + 2):
+            if stop.is_set():
+                state = state if attempts else "not_run"
+                message = message or "dispatch interrupted before this run was submitted"
+                break
             if number > 1 and options.retry_delay > 0:
-                time.sleep(options.retry_delay)
-            attempt, state = self._attempt(spec, number, options)
+                stop.wait(options.retry_delay)
+            attempt, state = self._attempt(spec, number, options, stop)
             attempts.append(attempt)
             hashes = {}
             if state == "succeeded":
@@ -520,7 +535,8 @@ class BatchRunner(Runner):
         with ThreadPoolExecutor(
             max_workers=min(self.concurrency, len(specs)), thread_name_prefix="winnow-batch"
         ) as pool:
-            futures = {pool.submit(self._run_batch, spec, options): spec for spec in specs}
+            stop = threading.Event()
+            futures = {pool.submit(self._run_batch, spec, options, stop): spec for spec in specs}
             try:
                 for fut in as_completed(futures):
                     exc = fut.exception()
@@ -528,6 +544,8 @@ class BatchRunner(Runner):
             finally:
                 for fut in futures:
                     fut.cancel()
+                # Interrupted: the polling threads cancel their jobs and return at once.
+                stop.set()
 
 
 # --------------------------------------------------------------------------------------------

@@ -224,3 +224,25 @@ def test_dask_runner_starts_and_closes_its_own_cluster(tmp_path):
 
     with pytest.raises(ValueError, match="No clients found"):
         Client.current()  # nothing left registered as the default client
+
+
+def test_interrupted_batch_dispatch_returns_at_once(tmp_path, fake_sbatch):
+    from winnow.tasks.dispatch import RunOptions, read_outcome
+
+    specs = _specs(tmp_path)
+    quick, sleeper = specs[0], specs[4]
+    # cancel=["true"]: the fake scheduler has no scancel; the job's own 3 s timeout ends it.
+    runner = BatchRunner(poll_interval=0.05, concurrency=2, cancel=["true"])
+    gen = runner._iter_outcomes([quick, sleeper], RunOptions(timeout=3, kill_grace=0.5))
+    spec, outcome = next(gen)
+    assert spec == quick and outcome.state == "succeeded"
+    gen.close()  # what Ctrl-C in the dispatcher does to the generator
+    journal = read_outcome(sleeper.run_dir)
+    assert journal.state == "failed" and "interrupted" in journal.message
+    marker = sleeper.run_dir / "winnow-exit-status"
+    import time
+
+    deadline = time.monotonic() + 30  # let the job end under its own timeout (no leftovers)
+    while not marker.exists() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert "timed_out=1" in marker.read_text()
