@@ -326,6 +326,23 @@ def _search_path(config: StudyConfig, base_dir: Path) -> Path:
     return resolve(base_dir / "x", m.search_path) if m is not None else Path(base_dir)
 
 
+def _weights_resolver(chain: Chain, selection: Selection, order: Sequence[int]):
+    """For the collect stage: re-solve the weights of surviving points against the chain.
+
+    ``order[p]`` is the selection position of the p-th value the collect stage holds; the
+    returned callable takes the surviving value positions and gives
+    ``(weights, mmd before, mmd after)`` with exact-kernel MMDs.
+    """
+    from .thinning import reweight
+
+    def resolve(surviving: np.ndarray) -> tuple[np.ndarray, float, float]:
+        keep = np.asarray(order, dtype=np.int64)[np.asarray(surviving, dtype=np.int64)]
+        new = reweight(chain.samples, selection, keep, by="position")
+        return new.weights, float(selection.mmd_exact), float(new.mmd_exact)
+
+    return resolve
+
+
 def collect_stage(
     config: StudyConfig,
     base_dir: Path,
@@ -338,7 +355,6 @@ def collect_stage(
 ) -> tuple[list[QoIValue], list[QoIEstimate]]:
     """Read every QoI from every run and make the weighted estimates with their uncertainty."""
     from .collect import estimate_qoi, read_qoi
-    from .thinning import resolve_weights_for
 
     cheap = cheap_predictions(config, base_dir, chain, selection)
     positions = {s.run_id: k for k, s in enumerate(specs)}
@@ -373,7 +389,7 @@ def collect_stage(
                 # with a cheap prediction, its own ESS over the chains is the relevant one
                 chain_ess=None if on_chain is not None else ess,
                 chain_index=chain.chain_index,
-                resolve_weights=resolve_weights_for(chain.samples, selection, order),
+                resolve_weights=_weights_resolver(chain, selection, order),
                 bootstrap=config.collect.bootstrap,
                 rng=rng,
             )

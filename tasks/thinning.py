@@ -69,6 +69,7 @@ __all__ = [
     "mmd_exact",
     "optimal_weights",
     "replace",
+    "reweight",
     "thin",
 ]
 
@@ -873,4 +874,58 @@ def disjoint(
         progress,
         excluded_rows=np.asarray(selection.indices),
         purpose="disjoint",
+    )
+
+
+def reweight(
+    samples: npt.ArrayLike | Chain,
+    selection: Selection,
+    keep: npt.ArrayLike,
+    *,
+    by: Literal["index", "position"] = "position",
+    progress: Progress | None = None,
+) -> Selection:
+    """Re-solve the weights of a subset of a selection's points against the whole chain.
+
+    Used when some chosen points have no result (their costly runs failed): the surviving
+    points get the weights that are optimal *for them*, with the selection's own kernel,
+    bandwidth, feature map and seed, rather than their old weights renormalised.
+
+    Parameters
+    ----------
+    samples : array_like, shape (n, d), or Chain
+        The chain the selection was made from.
+    selection : Selection
+    keep : array_like of int
+        Positions ``0..m-1`` in the selection (``by="position"``) or chain row indices
+        (``by="index"``) of the surviving points.
+
+    Returns
+    -------
+    Selection
+        The surviving points in the order given, their re-solved weights and MMDs; compare
+        ``mmd_exact`` with the original selection's to see how much the discrepancy grew.
+    """
+    x = _validate_samples(samples)
+    _check_belongs(x, selection)
+    _validate_choice("by", by, ("index", "position"))
+    k = np.asarray(keep)
+    if k.ndim != 1 or k.size == 0 or not np.issubdtype(k.dtype, np.integer):
+        raise ValueError(f"keep must be a non-empty 1-D sequence of integers, got {keep!r}")
+    idx = np.asarray(selection.indices, dtype=np.int64)
+    if by == "position":
+        if np.any(k < 0) or np.any(k >= idx.size):
+            raise ValueError(f"keep positions must be in 0..{idx.size - 1}, got {k.tolist()}")
+        rows = idx[k]
+    else:
+        missing = np.setdiff1d(k, idx)
+        if missing.size:
+            raise ValueError(f"keep has indices not in the selection: {missing.tolist()}")
+        rows = k.astype(np.int64)
+    if np.unique(rows).size != rows.size:
+        raise ValueError(f"keep names a point twice: {k.tolist()}")
+    s = _settings_from(selection, None, {})
+    # every point is fixed, so no selection happens: only the weights are solved
+    return _run(
+        x, rows.size, s, selection.seed, progress, fixed_rows=rows, purpose="reweight"
     )
