@@ -127,7 +127,7 @@ def main() -> None:
             from distributed import LocalCluster
 
             cluster = LocalCluster(
-                n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
+                n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
             )
             addr = cluster.scheduler_address
             timed(

@@ -41,7 +41,7 @@ from winnow.tasks.records import RunOutcome, RunSpec
 
 __all__ = ["dispatch_flow", "make_task_runner", "run_point"]
 
-_DASK_CLUSTER_DEFAULTS = {"threads_per_worker": 1, "dashboard_address": None}
+_DASK_CLUSTER_DEFAULTS = {"threads_per_worker": 1, "dashboard_address": ":0"}
 
 
 def make_task_runner(config_value: Any, *, concurrency: int):

@@ -178,7 +178,8 @@ class DaskRunner(Runner):
         Scheduler address of a running cluster (``tcp://host:8786``).
     local_cluster : dict, optional
         Keyword arguments of ``distributed.LocalCluster`` for a cluster started for this
-        dispatch and closed afterwards (default one thread per worker, no dashboard).
+        dispatch and closed afterwards (default one thread per worker; the scheduler's HTTP
+        server on a free port, so several clusters never fight over port 8787).
     concurrency : int, optional
         Runs in flight at once; default all (the cluster's own slots limit them).
     client : distributed.Client, optional
@@ -230,7 +231,7 @@ class DaskRunner(Runner):
             return self.client, None, False
         if self.address is not None:
             return Client(self.address, set_as_default=False), None, True
-        kwargs = {"threads_per_worker": 1, "processes": True, "dashboard_address": None}
+        kwargs = {"threads_per_worker": 1, "processes": True, "dashboard_address": ":0"}
         kwargs.update(self.local_cluster or {})
         cluster = LocalCluster(**kwargs)
         return Client(cluster, set_as_default=False), cluster, True

@@ -47,7 +47,7 @@ echo "Submitted batch job $!"
 def dask_address():
     distributed = pytest.importorskip("distributed")
     cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
     )
     try:
         yield cluster.scheduler_address
