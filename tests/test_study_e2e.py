@@ -35,7 +35,7 @@ def small_demo(tmp: Path, **changes) -> tuple[Path, dict]:
     data["budget"] = 5
     data["store"] = str(tmp / "study.h5")
     data["work_dir"] = str(tmp / "runs")
-    data["sample"]["draws"] = 3000
+    data["sample"]["draws"] = 6000
     data["sample"]["observations"]["file"] = str(ROOT / "examples/aquifer/data/observations.csv")
     data["dispatch"]["template_dir"] = str(ROOT / "examples/aquifer/templates")
     data["dispatch"]["constants"]["grid"] = "coarse"
@@ -80,9 +80,9 @@ def test_store_holds_every_stage(finished_study):
         values, estimates = store.read_results()
         prov = store.read_provenance()
         assert store.read_config_text() == path.read_text()
-    # chain: 4 chains x 1500 kept draws (burn-in: first half), parameters as configured
+    # chain: 4 chains x 3000 kept draws (burn-in: first half), parameters as configured
     assert chain.names == ("log10_T", "log10_S")
-    assert chain.samples.shape == (4 * 1500, 2)
+    assert chain.samples.shape == (4 * 3000, 2)
     assert chain.diagnostics is not None and chain.diagnostics.passed
     # the calibration recovers the invented true values (make_data.py: T = 5e-3 m2/s,
     # S = 2e-4) within a 99.9 % posterior interval
