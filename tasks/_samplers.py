@@ -126,50 +126,79 @@ class Move(ABC):
 
 
 class AdaptiveMetropolis(Move):
-    """Adaptive Metropolis (Haario, Saksman & Tamminen 2001), one adaptation per chain.
+    """Adaptive Metropolis (Haario, Saksman & Tamminen 2001) with a covariance pooled over
+    the chains.
 
-    The Gaussian random-walk proposal of chain ``i`` at iteration ``t`` has covariance
-    ``lambda_i * s_d * (C_t + eps I)`` where ``C_t`` is the empirical covariance of that
-    chain's history ``x_0 .. x_t`` (Haario et al. 2001, Eq. 2.1 with ``s_d = 2.4^2 / d``),
-    updated recursively (their Eq. 3). Before ``t0`` draws the covariance is the fixed
-    ``C_0 = diag(0.1 * prior scale)^2``.
+    The Gaussian random-walk proposal of chain ``i`` is ``N(x_i, lambda_i s_d C)`` with
+    ``s_d = 2.4^2 / d`` (Haario et al. 2001, Eq. (2.1); the 2.38^2 / d of Gelman, Roberts &
+    Gilks 1996 rounded) and ``C`` the empirical covariance of the draws plus ``eps I``.
+    ``C`` is *pooled over the chains*: the within-chain covariance
+    ``W = sum_k sum_t (x_kt - mean_k)(x_kt - mean_k)' / (K (n - 1))`` of all ``K`` chains,
+    updated recursively every iteration (Haario et al. 2001, Eq. (3), one Welford update per
+    chain summed into one matrix). Pooling uses ``K`` times the draws of one chain, which is
+    what a strongly correlated, badly scaled target needs; it is a sound choice because
+    every chain targets the same posterior, and it is the within-chain variance ``W`` of
+    Gelman & Rubin (1992).
 
     The global factor ``lambda_i`` (Andrieu & Thoms 2008, Algorithm 4) is adapted by a
-    Robbins-Monro step towards acceptance 0.234 with a decreasing gain ``t^-0.6`` (a
-    diminishing adaptation, as is that of ``C_t``).
+    Robbins-Monro step on ``log lambda`` towards acceptance 0.234 with gain ``t^-0.6``.
 
-    Burn-in schedule (a practical addition; the draws it touches are discarded): for the
-    first quarter of the burn-in the chain walks in from its over-dispersed start with the
-    fixed ``C_0`` and only ``lambda`` adapts, because the covariance of a trajectory points
-    along the path taken rather than along the posterior. ``C_t`` is then learnt, and
-    restarted at 50 % and 75 % of the burn-in (the last estimate becomes the fixed
-    covariance of the next ``t0`` steps and ``lambda`` is tuned afresh), so that what is
-    left of the walk-in does not distort the proposal for thousands of draws. With no
-    burn-in none of this happens, which is the plain method of Haario et al.
+    With a burn-in (the usual case), adaptation happens in the burn-in only, in windows that
+    double in length (25 or ``5 d`` iterations first, the last one stretched to end a
+    terminal stretch before the end of burn-in; the scheme of Stan's warm-up, common
+    practice). At the end of a window ``C`` becomes the window's pooled estimate (shrunk
+    towards its diagonal by ``n / (n + 5)``, as Stan does), the statistics restart and
+    ``lambda`` is tuned afresh; the first window walks in with ``C_0 = diag(0.1 prior
+    scale)^2``. Windows forget the walk-in from an over-dispersed start, where a
+    trajectory's covariance points along the path taken rather than along the posterior.
+    In the terminal stretch only ``lambda`` adapts; after the burn-in the proposal is fixed,
+    so the kept draws are a Markov chain.
+
+    With no burn-in the method is the plain AM of Haario et al. (2001): ``C_0`` for the
+    first ``t0 = max(100, 10 d)`` iterations, then the pooled ``C_t`` of the whole history,
+    refactorised every ``refresh`` iterations (the running statistics take every draw;
+    this only saves the ``O(d^3)`` factorisation), and ``lambda`` fixed at 1.
     """
 
     name = "adaptive_metropolis"
     target_acceptance = 0.234  # Roberts, Gelman & Gilks (1997), common practice
-    epsilon = 1e-10  # relative regularisation of C_t (Haario et al. 2001: eps > 0 small)
-    learn_from = 0.25  # fraction of the burn-in before which C_t is not learnt
-    restarts = (0.5, 0.75)  # fractions of the burn-in where C_t starts afresh
-    refresh = 10  # iterations between Cholesky factorisations of C_t
+    epsilon = 1e-10  # relative regularisation eps of C (Haario et al. 2001: eps > 0 small)
+    refresh = 10  # iterations between Cholesky factorisations of C_t (no burn-in)
+    max_window = 0.125  # longest window, as a fraction of the burn-in
+    terminal = 0.1  # fraction of the burn-in (at least 50 iterations) that tunes lambda only
 
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
         super().__init__(d, n_chains, initial_scale)
         self.t0 = max(100, 10 * d)
-        self.s_d = 2.4**2 / d
+        self.s_d = 2.4**2 / d  # Haario et al. (2001), Eq. (2.1)
+        self.first_window = max(25, 5 * d)
         c0 = np.diag((0.1 * self.initial_scale) ** 2)
         self._floor = (1e-6 * self.initial_scale) ** 2
+        self._windows: tuple[int, set[int]] = (-1, set())
         self.state = {
-            "count": np.zeros(n_chains),
+            "count": np.zeros(1),
             "mean": np.zeros((n_chains, d)),
-            "m2": np.zeros((n_chains, d, d)),
-            "c0": np.repeat(c0[None], n_chains, axis=0),
-            "chol": np.zeros((n_chains, d, d)),
+            "m2": np.zeros((d, d)),
+            "chol": np.linalg.cholesky(c0),
             "log_lambda": np.zeros(n_chains),
-            "steps": np.zeros(n_chains),
+            "steps": np.zeros(1),
         }
+
+    def window_ends(self, burn_in: int) -> set[int]:
+        """Iterations that end an adaptation window for a burn-in of ``burn_in``."""
+        if self._windows[0] == burn_in:
+            return self._windows[1]
+        last = burn_in - max(50, int(self.terminal * burn_in))
+        ends: list[int] = []
+        start, width = 0, self.first_window
+        cap = max(self.first_window, int(self.max_window * burn_in))
+        while start + width <= last:
+            # Stretch this window to `last` when the next (twice as long) would not fit.
+            end = last if start + 3 * width > last else start + width
+            ends.append(end)
+            start, width = end, min(2 * width, cap)
+        self._windows = (burn_in, set(ends))
+        return self._windows[1]
 
     def propose(
         self,
@@ -179,61 +208,73 @@ class AdaptiveMetropolis(Move):
         ctx: StepContext,
     ) -> tuple[np.ndarray, np.ndarray]:
         st = self.state
-        # All chains at once (the usual case): plain slices avoid fancy-index copies.
+        t = ctx.iteration
         i = slice(None) if len(ctx.index) == self.n_chains else ctx.index
-        if ctx.accept_prob is not None and (ctx.adapting or ctx.burn_in > 0):
-            # Robbins-Monro: log lambda += gamma_t (alpha - alpha*), gamma_t = t^-0.6
-            gamma = (st["steps"][i] + 1.0) ** -0.6
-            st["log_lambda"][i] += gamma * (ctx.accept_prob - self.target_acceptance)
-            st["steps"][i] += 1.0
-        if ctx.adapting and ctx.iteration in {int(f * ctx.burn_in) for f in self.restarts}:
-            ready = st["count"][i] > self.t0
-            if np.any(ready):
-                st["c0"][i] = np.where(ready[:, None, None], self._empirical(i), st["c0"][i])
-                # lambda was tuned to the old covariance: tune afresh around s_d C_t.
-                st["log_lambda"][i] = np.where(ready, 0.0, st["log_lambda"][i])
-                st["steps"][i] = np.where(ready, 0.0, st["steps"][i])
-            st["count"][i] = 0.0
-            st["mean"][i] = 0.0
-            st["m2"][i] = 0.0
-        if ctx.adapting and ctx.iteration < int(self.learn_from * ctx.burn_in):
-            # Walking in from an over-dispersed start: a trajectory's covariance points
-            # along the path taken, not along the posterior, so only lambda adapts here.
-            sqrt_scale = np.sqrt(self.s_d) * np.exp(st["log_lambda"][i])
-            if ctx.iteration == 0:
-                st["chol"][i] = _cholesky(st["c0"][i])
-            z = rng.standard_normal(x.shape)
-            step = np.einsum("kij,kj->ki", st["chol"][i], z) * sqrt_scale[:, None]
-            return x + step, np.zeros(len(x))
-        # Haario et al. (2001), Eq. (3): recursive mean and covariance of x_0 .. x_t.
-        n = st["count"][i] + 1.0
-        st["count"][i] = n
+        if ctx.burn_in > 0 and ctx.adapting:
+            if ctx.accept_prob is not None:
+                # Robbins-Monro: log lambda += gamma_t (alpha - alpha*), gamma_t = t^-0.6
+                gamma = (st["steps"][0] + 1.0) ** -0.6
+                # One lambda for all chains, from their mean acceptance: a chain that sits in
+                # a tail while lambda is tuned would otherwise keep a step size fit only there.
+                mean_accept = float(np.mean(ctx.accept_prob))
+                st["log_lambda"][i] += gamma * (mean_accept - self.target_acceptance)
+                st["steps"][0] += 1.0
+            ends = self.window_ends(ctx.burn_in)
+            if t in ends:
+                n = st["count"][0]
+                if n >= 3.0:
+                    cov = self._empirical()
+                    # Shrink towards the diagonal by n / (n + 5) (Stan's warm-up, common
+                    # practice): a short window's estimate stays positive definite.
+                    w = n / (n + 5.0)
+                    cov = w * cov + (1.0 - w) * np.diag(np.diag(cov))
+                    st["chol"] = _cholesky(cov[None])[0]
+                    st["log_lambda"][:] = 0.0  # tuned afresh around s_d C
+                    st["steps"][0] = 0.0
+                st["count"][0] = 0.0
+                st["mean"][:] = 0.0
+                st["m2"][:] = 0.0
+            if t < max(ends, default=0):
+                self._update(x, i)
+            elif t == ctx.burn_in - 1:
+                # The kept draws start plain AM afresh, with the burn-in's C as C_0.
+                st["count"][0] = 0.0
+                st["mean"][:] = 0.0
+                st["m2"][:] = 0.0
+        else:
+            # Plain AM (Haario et al. 2001): C_0 until t0, then the pooled C_t of the history.
+            c = self._update(x, i)
+            if c > self.t0 and (c == self.t0 + 1 or c % self.refresh == 0):
+                st["chol"] = _cholesky(self._empirical()[None])[0]
+        z = rng.standard_normal(x.shape)
+        scale = math.sqrt(self.s_d) * np.exp(
+            st["log_lambda"][i]
+        )  # lambda scales the step (std dev)
+        return x + (z @ st["chol"].T) * scale[:, None], np.zeros(len(x))
+
+    def _update(self, x: np.ndarray, i: slice | np.ndarray) -> int:
+        """Welford update of the chains' means and the pooled scatter matrix (Haario et al.
+        2001, Eq. (3), summed over chains); returns the draws per chain so far."""
+        st = self.state
+        n = st["count"][0] + 1.0
+        st["count"][0] = n
         mean = st["mean"][i]
         delta = x - mean
-        mean = mean + delta / n[:, None]
+        mean = mean + delta / n
         st["mean"][i] = mean
-        st["m2"][i] = st["m2"][i] + delta[:, :, None] * (x - mean)[:, None, :]
-        # All chains advance together, so they share the count. The Cholesky factor of the
-        # covariance is refreshed every `refresh` steps (and when C_0 gives way to C_t):
-        # the running statistics still take every draw; this only saves the O(d^3) work.
-        c = int(n[0])
-        if c == 1:
-            st["chol"][i] = _cholesky(st["c0"][i])
-        elif c > self.t0 and (c == self.t0 + 1 or c % self.refresh == 0):
-            st["chol"][i] = _cholesky(self._empirical(i))
-        sqrt_scale = np.sqrt(self.s_d) * np.exp(st["log_lambda"][i])  # lambda on the std dev
-        z = rng.standard_normal(x.shape)
-        step = np.einsum("kij,kj->ki", st["chol"][i], z) * sqrt_scale[:, None]
-        return x + step, np.zeros(len(x))
+        st["m2"] += delta.T @ (x - mean)
+        return int(n)
 
-    def _empirical(self, i: slice | np.ndarray) -> np.ndarray:
-        """``C_t + eps I`` of the chains ``i`` (eps relative to the mean variance)."""
-        n = self.state["count"][i]
-        cov = self.state["m2"][i] / np.maximum(n - 1.0, 1.0)[:, None, None]
-        diag = np.einsum("kii->ki", cov)  # a writeable view of the diagonals
-        # eps I relative to the mean variance, floored at 1e-12 of the prior variances so that
-        # a chain that rejected everything for a while still gets a usable proposal.
-        diag += self.epsilon * (diag.sum(axis=1) / self.d)[:, None] + self._floor
+    def _empirical(self) -> np.ndarray:
+        """Pooled within-chain covariance plus ``eps I`` (eps relative to the mean variance,
+        floored at 1e-12 of the prior variances so that chains that rejected everything
+        for a while still get a usable proposal)."""
+        n = self.state["count"][0]
+        k = self.n_chains
+        cov = self.state["m2"] / max(k * (n - 1.0), 1.0)
+        cov = 0.5 * (cov + cov.T)
+        diag = np.einsum("ii->i", cov)  # a writeable view of the diagonal
+        diag += self.epsilon * diag.sum() / self.d + self._floor
         return cov
 
 

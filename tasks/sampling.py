@@ -60,9 +60,9 @@ __all__ = [
 
 SamplerName = Literal["adaptive_metropolis", "ensemble", "de_mcmc"]
 SAMPLERS: tuple[str, ...] = tuple(MOVES)
-STATE_FORMAT = "winnow.sample-state/1"
+STATE_FORMAT = "winnow.sample-state/2"  # /2: pooled adaptive Metropolis state
 _MAX_START_ROUNDS = 100  # prior draws per chain tried for a finite starting point
-_RESET_FRACTIONS = (0.2, 0.4, 0.6)  # points in the burn-in where stray walkers are reset
+_RESET_FRACTIONS = (0.2, 0.4, 0.6)  # points in the burn-in where stray chains are reset
 
 
 def _validate_int(value: Any, name: str, minimum: int) -> int:
@@ -160,18 +160,21 @@ def _reset_strays(
     scale: np.ndarray,
     rng: np.random.Generator,
 ) -> None:
-    """Bring stray ensemble walkers back (during burn-in only).
+    """Bring stray chains (ensemble walkers) back (during burn-in only).
 
     An ensemble walker can be caught far out in a tail where the others' positions give it
     no useful direction (e.g. along a bound mapped to infinity), and differences between
-    walkers scattered over the prior can be far too large for a narrow posterior. A walker
+    walkers scattered over the prior can be far too large for a narrow posterior. An
+    adaptive Metropolis chain still walking in from an over-dispersed start on a badly
+    scaled target pollutes the pooled covariance estimate and may need thousands of draws
+    to arrive. A chain
     whose log density is below the best one by more than the 1 - 1e-6 quantile of
     chi^2_d / 2 (what a Gaussian posterior would allow) is a stray. With at least d + 1 good
     walkers each stray moves to the position of a random good one; otherwise the strays are
     re-drawn in a small Gaussian ball (1e-3 of the prior scale) around the best walker, as
     ensemble samplers are commonly started. Done only while the draws are discarded as
     burn-in, so the kept draws are untouched (common practice; not part of Goodman & Weare
-    2010 or ter Braak 2006).
+    2010, ter Braak 2006 or Haario et al. 2001).
     """
     from scipy import stats
 
@@ -333,7 +336,7 @@ def sample(
     else:
         groups = [(np.arange(n_chains), np.arange(0))]
     x = ps.to_user(u)
-    reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0} if move_cls.ensemble else set()
+    reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
     what = f"sampling ({sampler})"
     report_every = max(1, n_draws // 100)
     t_start = time.perf_counter()
