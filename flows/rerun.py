@@ -68,7 +68,9 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
         if not pending:
             log.info("%s %s: every run already succeeded; nothing to rerun", store_path, rev)
         elif not replace:
-            todo = [s for s in specs if s.run_id in pending]
+            todo = _rerender(
+                config, base, chain, selection, [s for s in specs if s.run_id in pending]
+            )
             log.info("rerunning %d run(s) with their recorded decks", len(todo))
             outcomes.update(_dispatch(config, base, todo, w.successful_runs_by_key(), log))
         else:
@@ -109,6 +111,26 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
     result = summarise(store_path, rev, in_selection, outcomes, estimates)
     result.report = str(_report(store_path, rev, config.study.name))
     return result
+
+
+def _rerender(config, base: Path, chain, selection, todo: list[RunSpec]) -> list[RunSpec]:
+    """Render the decks of the runs to repeat again, as recorded.
+
+    A failed solver may have deleted or edited its run folder; running the recorded command
+    in it would fail to start or use an edited deck. Rendering is deterministic, so the fresh
+    specs carry the recorded keys; a different key means the templates changed since.
+    """
+    position = {int(i): k for k, i in enumerate(selection.indices)}
+    fresh = prepare_runs_task(
+        config, base, chain, selection, positions=[position[s.point_index] for s in todo]
+    )
+    for old, new in zip(todo, fresh, strict=True):
+        if new.key != old.key:
+            raise ValueError(
+                f"run {old.run_id}: its decks no longer render as recorded (templates or "
+                "constants changed); run the study again with `winnow run CONFIG`"
+            )
+    return fresh
 
 
 def _spec(specs: list[RunSpec], run_id: str) -> RunSpec:
