@@ -169,7 +169,8 @@ class LogPosterior:
         return self.priors.d
 
     def __call__(self, x: npt.ArrayLike) -> np.ndarray:
-        x = np.atleast_2d(np.asarray(x, dtype=np.float64))
+        if not (type(x) is np.ndarray and x.ndim == 2 and x.dtype == np.float64):
+            x = np.atleast_2d(np.asarray(x, dtype=np.float64))  # the sampler's rows skip this
         if x.ndim != 2 or x.shape[1] != self.d:
             raise ValueError(f"parameter rows must have shape (k, {self.d}), got {x.shape}")
         out = self.priors.logpdf(x)
@@ -264,6 +265,19 @@ def _gaussian(r: np.ndarray, s: np.ndarray) -> np.ndarray:
     return np.sum(-0.5 * z * z - np.log(s) - _LOG_SQRT_2PI, axis=-1)
 
 
+def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """Gaussian log likelihood of residuals ``r`` (k, n_obs) for a known scale ``s``: the
+    normalising constant and ``1 / s`` are computed once, not at every evaluation."""
+    inv_s = 1.0 / s
+    const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
+
+    def loglik(r: np.ndarray) -> np.ndarray:
+        z = r * inv_s
+        return const - 0.5 * np.einsum("ij,ij->i", z, z)
+
+    return loglik
+
+
 def _student_t(nu: float) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
     const = (
         special.gammaln(0.5 * (nu + 1)) - special.gammaln(0.5 * nu) - 0.5 * math.log(nu * math.pi)
@@ -314,8 +328,15 @@ def _make_caller(
     def loop(x: np.ndarray) -> np.ndarray:
         out = np.empty((len(x), *out_shape))
         with np.errstate(all="ignore"):  # non-finite output is handled by the caller
-            for k in range(len(x)):
-                out[k] = single(x[k])
+            for k, theta in enumerate(x):
+                # single() inlined for the common case: this runs once per model call.
+                try:
+                    val = np.asarray(func(theta, *args), dtype=np.float64)
+                except Exception:  # noqa: BLE001 - single() reports it with theta
+                    val = single(theta)
+                if val.shape != out_shape:
+                    val = single(theta)
+                out[k] = val
         return out
 
     def batch(x: np.ndarray) -> np.ndarray:
@@ -454,6 +475,15 @@ def build_log_posterior(
     caller, vec = _make_caller(forward, label, inputs, y.shape, vectorised, _probe_rows(ps, cols))
 
     identity = cols == list(range(ps.d))
+    if fixed_sigma is not None and likelihood == "gaussian":
+        fixed_loglik = _gaussian_fixed(fixed_sigma)
+
+        def evaluate_fixed(x: np.ndarray) -> np.ndarray:
+            pred = caller(x if identity else x[:, cols])
+            with np.errstate(all="ignore"):
+                return fixed_loglik(pred - y)
+
+        return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec)
 
     def evaluate_forward(x: np.ndarray) -> np.ndarray:
         pred = caller(x if identity else x[:, cols])

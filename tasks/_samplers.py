@@ -151,13 +151,14 @@ class AdaptiveMetropolis(Move):
     ``lambda`` is tuned afresh; the first window walks in with ``C_0 = diag(0.1 prior
     scale)^2``. Windows forget the walk-in from an over-dispersed start, where a
     trajectory's covariance points along the path taken rather than along the posterior.
-    In the terminal stretch only ``lambda`` adapts; after the burn-in the proposal is fixed,
-    so the kept draws are a Markov chain.
+    In the terminal stretch only ``lambda`` adapts. After the burn-in ``lambda`` is fixed and
+    the kept draws are plain AM (below) started afresh with the burn-in's ``C`` as ``C_0``.
 
     With no burn-in the method is the plain AM of Haario et al. (2001): ``C_0`` for the
     first ``t0 = max(100, 10 d)`` iterations, then the pooled ``C_t`` of the whole history,
     refactorised every ``refresh`` iterations (the running statistics take every draw;
-    this only saves the ``O(d^3)`` factorisation), and ``lambda`` fixed at 1.
+    this only saves the ``O(d^3)`` factorisation), and ``lambda`` fixed (at 1 when there
+    was no burn-in).
     """
 
     name = "adaptive_metropolis"
@@ -175,6 +176,7 @@ class AdaptiveMetropolis(Move):
         c0 = np.diag((0.1 * self.initial_scale) ** 2)
         self._floor = (1e-6 * self.initial_scale) ** 2
         self._windows: tuple[int, set[int]] = (-1, set())
+        self._last_end = 0
         self.state = {
             "count": np.zeros(1),
             "mean": np.zeros((n_chains, d)),
@@ -188,6 +190,7 @@ class AdaptiveMetropolis(Move):
         """Iterations that end an adaptation window for a burn-in of ``burn_in``."""
         if self._windows[0] == burn_in:
             return self._windows[1]
+        self._last_end = 0
         last = burn_in - max(50, int(self.terminal * burn_in))
         ends: list[int] = []
         start, width = 0, self.first_window
@@ -198,6 +201,7 @@ class AdaptiveMetropolis(Move):
             ends.append(end)
             start, width = end, min(2 * width, cap)
         self._windows = (burn_in, set(ends))
+        self._last_end = max(ends, default=0)
         return self._windows[1]
 
     def propose(
@@ -234,7 +238,7 @@ class AdaptiveMetropolis(Move):
                 st["count"][0] = 0.0
                 st["mean"][:] = 0.0
                 st["m2"][:] = 0.0
-            if t < max(ends, default=0):
+            if t < self._last_end:
                 self._update(x, i)
             elif t == ctx.burn_in - 1:
                 # The kept draws start plain AM afresh, with the burn-in's C as C_0.

@@ -329,12 +329,14 @@ def sample(
         evals0 += int(_plain(resume.get("n_evals", 0)))
         nonfinite0 += int(_plain(resume.get("n_nonfinite", 0)))
 
+    # Groups of chains updated together, as (index, slice, slice of the others): basic
+    # slices give views, which saves a copy of every array at every step.
     if move_cls.ensemble:
         h = n_chains // 2
-        halves = [np.arange(h), np.arange(h, n_chains)]
-        groups = [(halves[0], halves[1]), (halves[1], halves[0])]
+        first, second = slice(0, h), slice(h, n_chains)
+        groups = [(np.arange(h), first, second), (np.arange(h, n_chains), second, first)]
     else:
-        groups = [(np.arange(n_chains), np.arange(0))]
+        groups = [(np.arange(n_chains), slice(None), slice(0, 0))]
     x = ps.to_user(u)
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
     what = f"sampling ({sampler})"
@@ -342,24 +344,24 @@ def sample(
     t_start = time.perf_counter()
     for t in range(start, n_draws):
         adapting = t < n_burn
-        for g, comp in groups:
+        for g, sl, comp in groups:
             ctx = StepContext(
                 iteration=t,
                 index=g,
                 adapting=adapting,
-                accept_prob=None if t == 0 else last_ap[g],
+                accept_prob=None if t == 0 else last_ap[sl],
                 burn_in=n_burn,
             )
-            y, log_q = move.propose(u[g], u[comp], gen, ctx)
+            y, log_q = move.propose(u[sl], u[comp], gen, ctx)
             lu_y, lx_y, x_y = target(y)
             # lu_y is finite or -inf, lpu finite: log_alpha is never NaN.
-            log_alpha = lu_y - lpu[g] + log_q
+            log_alpha = lu_y - lpu[sl] + log_q
             acc = np.log(gen.random(len(g))) < log_alpha
-            last_ap[g] = np.exp(np.minimum(log_alpha, 0.0))
-            take = g[acc]
-            u[take], lpu[take], lpx[take], x[take] = y[acc], lu_y[acc], lx_y[acc], x_y[acc]
+            np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
+            u[sl][acc], lpu[sl][acc] = y[acc], lu_y[acc]
+            lpx[sl][acc], x[sl][acc] = lx_y[acc], x_y[acc]
             if not adapting:
-                accepted[g] += acc
+                accepted[sl] += acc
         if t in reset_at:
             _reset_strays(u, lpu, lpx, x, target, move.initial_scale, gen)
         if t >= n_burn and (t - n_burn) % thin == 0:
