@@ -14,7 +14,8 @@ Samplers
     proposal covariance; a global proposal scale is tuned during burn-in only.
 ``ensemble``
     Affine-invariant ensemble sampler with the stretch move (Goodman & Weare 2010); the
-    chains are the walkers of one ensemble (at least ``max(4, 2 d)`` of them).
+    chains are the walkers of one ensemble (at least ``max(4, 2 d)`` of them; ``2 d + 2``
+    when ``n_chains`` is left out).
 ``de_mcmc``
     Differential-evolution MCMC (ter Braak 2006); walkers as for ``ensemble``.
 
@@ -212,7 +213,7 @@ def sample(
     priors: PriorSet | Sequence[Prior | Mapping[str, Any]] | None = None,
     *,
     sampler: SamplerName = "adaptive_metropolis",
-    n_chains: int = 4,
+    n_chains: int | None = None,
     n_draws: int = 4000,
     burn_in: int | Literal["half", "none"] = "half",
     thin: int = 1,
@@ -234,8 +235,10 @@ def sample(
         The parameters' priors (transforms, support, starting points). With a
         :class:`LogPosterior` they may be left out; if given they must be its leading ones.
     sampler : {"adaptive_metropolis", "ensemble", "de_mcmc"}
-    n_chains : int
-        Chains (ensemble walkers). Ensemble samplers need at least ``max(4, 2 d)``.
+    n_chains : int, optional
+        Chains (ensemble walkers). Ensemble samplers need at least ``max(4, 2 d)``. Left
+        out: 4 for ``adaptive_metropolis`` and ``2 d + 2`` (at least 4) walkers for the
+        ensemble samplers; ``diagnostics.details["n_chains_rule"]`` says which applied.
     n_draws : int
         Iterations per chain, burn-in included.
     burn_in : "half", "none" or int
@@ -277,14 +280,24 @@ def sample(
     if sampler not in MOVES:
         raise ValueError(f"sampler must be one of {', '.join(MOVES)}, got {sampler!r}")
     move_cls = MOVES[sampler]
-    n_chains = _validate_int(n_chains, "n_chains", 1)
+    if n_chains is None:
+        n_chains = max(4, 2 * d + 2) if move_cls.ensemble else 4
+        chains_rule = (
+            f"default: max(4, 2 d + 2) = {n_chains} walkers for {d} parameters"
+            if move_cls.ensemble
+            else "default: 4 chains"
+        )
+    else:
+        n_chains = _validate_int(n_chains, "n_chains", 1)
+        chains_rule = "given"
     n_draws = _validate_int(n_draws, "n_draws", 8)
     thin = _validate_int(thin, "thin", 1)
     checkpoint_every = _validate_int(checkpoint_every, "checkpoint_every", 1)
     if move_cls.ensemble and n_chains < max(4, 2 * d):
         raise ValueError(
             f"sampler {sampler!r} needs n_chains >= max(4, 2 d) = {max(4, 2 * d)} walkers "
-            f"for {d} parameters, got {n_chains}"
+            f"for {d} parameters, got {n_chains}; in a study config set sample.chains to at "
+            f"least {max(4, 2 * d)} ({2 * d + 2} recommended), or leave n_chains out here"
         )
     n_burn, rule = burn_in_count(n_draws, burn_in)
     n_kept = len(range(n_burn, n_draws, thin))
@@ -398,6 +411,7 @@ def sample(
     )
     details = {
         "sampler": sampler,
+        "n_chains_rule": chains_rule,
         "n_iterations": n_draws,
         "thin": thin,
         "model_evaluations": n_evals,

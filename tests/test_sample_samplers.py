@@ -195,6 +195,26 @@ def test_bad_settings(kwargs, pattern):
         sample(gauss_logp, PRIORS, **{"n_draws": 100, **kwargs})
 
 
+def test_default_walkers_follow_dimension():
+    # Left out, n_chains is 2 d + 2 ensemble walkers (>= max(4, 2 d), the minimum checked
+    # above; Goodman & Weare 2010 need more walkers than dimensions) and 4 AM chains.
+    priors5 = [{"name": f"p{j}", "dist": "normal", "mu": 0.0, "sigma": 1.0} for j in range(5)]
+    chain = sample(
+        lambda x: -0.5 * (x * x).sum(axis=1),
+        priors5,
+        sampler="ensemble",
+        n_draws=40,
+        rng=0,
+        thresholds={"rhat_max": 10.0, "ess_bulk_min": 1.0, "ess_tail_min": 1.0},
+    )
+    assert chain.diagnostics.n_chains == 12
+    assert "max(4, 2 d + 2) = 12" in chain.diagnostics.details["n_chains_rule"]
+    am = _run("adaptive_metropolis", n_chains=None, n_draws=40)
+    assert am.diagnostics.n_chains == 4
+    with pytest.raises(ValueError, match=r"sample.chains to at least 10 \(12 recommended\)"):
+        sample(lambda x: -0.5 * (x * x).sum(axis=1), priors5, sampler="ensemble", n_chains=4)
+
+
 def test_plain_callable_wrong_shape_is_reported():
     with pytest.raises(ValueError, match=r"returned shape \(\) for 4 rows"):
         sample(lambda x: 0.0, PRIORS, n_chains=4, n_draws=50, rng=0)
