@@ -26,9 +26,10 @@ rewrite       overwrite the run folder's manifest, append a line to the deck, th
 flaky         fail the first time this deck is solved, succeed afterwards (marker in STATE)
 slow          wait ``slow_s`` seconds or until ``STATE/release`` exists, then succeed
 load          sleep a pseudo-random 0..``max_sleep_ms`` ms and fail with probability
-              ``fail_rate``; both drawn from SHA-256 of the deck text and the number of
-              earlier attempts of this deck (counter in STATE), so a run is reproducible and a
-              rerun of a failed point draws afresh (it may fail again)
+              ``fail_rate``; both drawn from SHA-256 of the point (x, y) and the number of
+              earlier attempts of this point (counter in STATE), so a run is reproducible and
+              a rerun of a failed point draws afresh (it may fail again); with
+              ``fail_once = 1`` only a point's first attempt can fail
 """
 
 from __future__ import annotations
@@ -81,7 +82,8 @@ def main() -> int:
         mode = json.loads(modes.read_text()).get(repr(x), mode)
     here = Path.cwd()
     _append(state / "calls.log", f"{here.name} {os.getpid()} {mode}\n")
-    digest = hashlib.sha256(text.encode()).hexdigest()
+    # the point, not the deck text (which holds the STATE path): same draws in every folder
+    digest = hashlib.sha256(f"{x!r},{y!r}".encode()).hexdigest()
     q = x + 2.0 * y
 
     if mode == "exit":
@@ -140,7 +142,8 @@ def main() -> int:
         u_sleep = int.from_bytes(h[:8], "little") / 2.0**64
         u_fail = int.from_bytes(h[8:16], "little") / 2.0**64
         time.sleep(u_sleep * float(values.get("max_sleep_ms", "200")) / 1000.0)
-        if u_fail < float(values.get("fail_rate", "0.1")):
+        once = values.get("fail_once", "0") not in ("0", "0.0", "False")
+        if u_fail < float(values.get("fail_rate", "0.1")) and (n == 0 or not once):
             print(f"fault solver: random failure (u={u_fail:.4f})", file=sys.stderr)
             return 1
         _write(q)

@@ -26,6 +26,7 @@ state = {{ state }}
 slow_s = {{ slow_s }}
 max_sleep_ms = {{ max_sleep_ms }}
 fail_rate = {{ fail_rate }}
+fail_once = {{ fail_once }}
 x = {{ x }}
 y = {{ y }}
 """
@@ -66,6 +67,7 @@ def study_data(folder: Path, **over: Any) -> dict[str, Any]:
                 "slow_s": 5.0,
                 "max_sleep_ms": 200.0,
                 "fail_rate": 0.1,
+                "fail_once": 0,
             },
             "command": ["{python}", str(SOLVER), "{deck}"],
             "outputs": ["out.json"],
