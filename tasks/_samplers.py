@@ -217,12 +217,14 @@ class AdaptiveMetropolis(Move):
         if ctx.burn_in > 0 and ctx.adapting:
             if ctx.accept_prob is not None:
                 # Robbins-Monro: log lambda += gamma_t (alpha - alpha*), gamma_t = t^-0.6
-                gamma = (st["steps"][0] + 1.0) ** -0.6
+                steps = float(st["steps"][0]) + 1.0
+                gamma = steps**-0.6
                 # One lambda for all chains, from their mean acceptance: a chain that sits in
                 # a tail while lambda is tuned would otherwise keep a step size fit only there.
-                mean_accept = float(np.mean(ctx.accept_prob))
+                ap = ctx.accept_prob
+                mean_accept = float(np.add.reduce(ap)) / len(ap)
                 st["log_lambda"][i] += gamma * (mean_accept - self.target_acceptance)
-                st["steps"][0] += 1.0
+                st["steps"][0] = steps
             ends = self.window_ends(ctx.burn_in)
             if t in ends:
                 n = st["count"][0]

@@ -371,8 +371,12 @@ def sample(
             log_alpha = lu_y - lpu[sl] + log_q
             acc = np.log(gen.random(len(g))) < log_alpha
             np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
-            u[sl][acc], lpu[sl][acc] = y[acc], lu_y[acc]
-            lpx[sl][acc], x[sl][acc] = lx_y[acc], x_y[acc]
+            # copyto with a mask: one call per array instead of a gather and a scatter
+            acc_rows = acc[:, None]
+            np.copyto(u[sl], y, where=acc_rows)
+            np.copyto(x[sl], x_y, where=acc_rows)
+            np.copyto(lpu[sl], lu_y, where=acc)
+            np.copyto(lpx[sl], lx_y, where=acc)
             if not adapting:
                 accepted[sl] += acc
         if t in reset_at:
