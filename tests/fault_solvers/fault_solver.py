@@ -7,7 +7,7 @@ study's template: ``mode``, ``fault_below``, ``state`` (a folder outside the run
 ``repr(x)`` to a mode overrides both for the points it names. A good run writes ``out.json`` with
 ``{"q": x + 2 y}`` in its working folder (the run folder).
 
-Every invocation first appends one line ``<run folder name> <pid> <mode>`` to
+Every invocation first appends one line ``<run folder name> <pid> <mode> <parent pid>`` to
 ``STATE/calls.log`` (one ``write`` on a file opened with ``O_APPEND``: lines from concurrent
 solvers do not interleave), so a test can count how often each point was solved.
 
@@ -81,7 +81,7 @@ def main() -> int:
     if modes.exists():
         mode = json.loads(modes.read_text()).get(repr(x), mode)
     here = Path.cwd()
-    _append(state / "calls.log", f"{here.name} {os.getpid()} {mode}\n")
+    _append(state / "calls.log", f"{here.name} {os.getpid()} {mode} {os.getppid()}\n")
     # the point, not the deck text (which holds the STATE path): same draws in every folder
     digest = hashlib.sha256(f"{x!r},{y!r}".encode()).hexdigest()
     q = x + 2.0 * y

@@ -120,13 +120,18 @@ def run_study(path: Path, **kwargs: Any):
 
 def calls(folder: Path) -> list[tuple[str, int, str]]:
     """Solver invocations logged by the fault solver: (run folder name, pid, mode)."""
+    return [(name, pid, mode) for name, pid, mode, _ in calls_with_parent(folder)]
+
+
+def calls_with_parent(folder: Path) -> list[tuple[str, int, str, int]]:
+    """Solver invocations: (run folder name, pid, mode, pid of the process that started it)."""
     log = folder / "state" / "calls.log"
     if not log.exists():
         return []
     out = []
     for line in log.read_text().splitlines():
-        name, pid, mode = line.split()
-        out.append((name, int(pid), mode))
+        name, pid, mode, *parent = line.split()
+        out.append((name, int(pid), mode, int(parent[0]) if parent else 0))
     return out
 
 
