@@ -99,6 +99,10 @@ CONFIG_CASES = {
         {"dispatch__templates": ["/etc/hostname"]},
         ["dispatch.templates", "/etc/hostname"],
     ),
+    "copied file escapes": (
+        {"dispatch__copy": ["../outside.txt"]},
+        ["copy", "../outside.txt", "inside the run folder"],
+    ),
     "missing chain file": (
         {"sample__import_chain__file": "nope.npy"},
         ["nope.npy"],
@@ -112,6 +116,8 @@ def test_bad_config_is_refused_and_nothing_written(tmp_path, case, command):
     over, words = CONFIG_CASES[case]
     folder = tmp_path / "study"
     (tmp_path / "outside.txt.j2").write_text("x = {{ x }}\n")
+    folder.mkdir()
+    (folder / "outside.txt").write_text("a file next to the study, outside templates/\n")
     cfg = _spoil(folder, **over)
     _refused(folder, [command, cfg], *words)
     assert not (folder / "study.h5").exists() and not (folder / "runs").exists()
