@@ -20,9 +20,13 @@ from pydantic import Field
 
 from winnow.tasks.config import StudyConfig, load_config
 
-__all__ = ["RunStoreLocation", "SolverSettings", "expand_blocks", "load_study"]
+__all__ = ["LOGO_FILE", "RunStoreLocation", "SolverSettings", "expand_blocks", "load_study"]
 
 _DOCS = "https://pypi.org/project/winnow/"
+#: The blocks' logo ships with the package (``flows/assets/winnow-logo.png``, 256x256 px).
+#: Prefect wants an http(s) address for it; set ``_logo_url`` to where it is hosted once the
+#: package is published. Until then the UI shows its default icon.
+LOGO_FILE = Path(__file__).with_name("assets") / "winnow-logo.png"
 
 
 class SolverSettings(Block):

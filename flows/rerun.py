@@ -20,7 +20,7 @@ from pathlib import Path
 import yaml
 from prefect import flow, get_run_logger
 
-from winnow.flows.study import StudyResult, _dispatch, _report, summarise
+from winnow.flows.study import StudyResult, _dispatch, _report, recorded_values, summarise
 from winnow.tasks.config import parse_config
 from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task
 from winnow.tasks.records import RunOutcome, RunSpec
@@ -106,7 +106,15 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
             selection = new_sel
         w.write_runs(rev, specs, [outcomes[s.run_id] for s in specs if s.run_id in outcomes])
         in_selection = [_spec_of_point(specs, int(i)) for i in selection.indices]
-        values, estimates = collect_task(config, base, chain, selection, in_selection, outcomes)
+        values, estimates = collect_task(
+            config,
+            base,
+            chain,
+            selection,
+            in_selection,
+            outcomes,
+            recorded=recorded_values(w, outcomes.values()),
+        )
         w.write_results(rev, values, estimates)
     result = summarise(store_path, rev, in_selection, outcomes, estimates)
     result.report = str(_report(store_path, rev, config.study.name))

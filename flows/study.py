@@ -37,7 +37,7 @@ from winnow.tasks.prefect_tasks import (
 )
 from winnow.tasks.records import RunOutcome
 
-__all__ = ["StudyResult", "study_flow", "study_inputs", "summarise"]
+__all__ = ["StudyResult", "recorded_values", "study_flow", "study_inputs", "summarise"]
 
 
 @dataclass
@@ -233,7 +233,15 @@ def study_flow(
         if "results" in done:
             values, estimates = store.read_results(rev)
         else:
-            values, estimates = collect_task(config, base, chain, selection, specs, outcomes)
+            values, estimates = collect_task(
+                config,
+                base,
+                chain,
+                selection,
+                specs,
+                outcomes,
+                recorded=recorded_values(store, outcomes.values()),
+            )
             store.write_results(rev, values, estimates)
 
     result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
@@ -263,6 +271,27 @@ def summarise(
         estimates={e.name: _estimate_summary(e) for e in estimates},
         up_to_date=up_to_date,
     )
+
+
+def recorded_values(store, outcomes) -> dict[tuple[str, str], Any]:
+    """QoI values that earlier revisions recorded for runs reused from them.
+
+    Keyed by ``(reused_from, qoi name)``, where ``reused_from`` is ``"r0001/<run id>"``.
+    """
+    wanted: dict[str, set[str]] = {}
+    for o in outcomes:
+        if o.reused_from and "/" in o.reused_from:
+            rev, run_id = o.reused_from.split("/", 1)
+            wanted.setdefault(rev, set()).add(run_id)
+    out: dict[tuple[str, str], Any] = {}
+    for rev, run_ids in wanted.items():
+        if rev not in store.revisions() or "results" not in store.stages_done(rev):
+            continue
+        values, _ = store.read_results(rev)
+        for v in values:
+            if v.run_id in run_ids:
+                out[(f"{rev}/{v.run_id}", v.name)] = v
+    return out
 
 
 def _observation_table(config: StudyConfig, base: Path) -> dict[str, Any] | None:

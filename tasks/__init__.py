@@ -25,6 +25,7 @@ from typing import Any
 _PREFECT_TASKS = (
     "collect_task",
     "prepare_runs_task",
+    "render_runs_task",
     "sample_task",
     "thin_stage_task",
     "thin_task",

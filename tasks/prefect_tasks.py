@@ -30,6 +30,7 @@ from .records import Chain, RunSpec, Selection
 __all__ = [
     "collect_task",
     "prepare_runs_task",
+    "render_runs_task",
     "sample_task",
     "thin_task",
     "thin_stage_task",
@@ -69,3 +70,35 @@ def prepare_runs_task(
 def collect_task(config: StudyConfig, base_dir: Path, *args: Any, **kwargs: Any):
     """Read the QoIs and make the weighted estimates (see :func:`stages.collect_stage`)."""
     return stages.collect_stage(config, Path(base_dir), *args, **kwargs)
+
+
+@task(name="render-runs", task_run_name="render-{run_root}")
+def render_runs_task(
+    selection: Selection,
+    names: list[str],
+    *,
+    run_root: Path,
+    decks: Any,
+    command: list[str],
+    template_root: Path,
+) -> list[RunSpec]:
+    """Render one run folder per chosen point of ``selection`` (no study config needed).
+
+    Parameters
+    ----------
+    selection : Selection
+        From :func:`thin_task` (or :func:`winnow.tasks.thinning.thin`).
+    names : list of str
+        Parameter names, in the order of the selection's columns (the template variables).
+    run_root, decks, command, template_root
+        As for :func:`winnow.tasks.dispatch.render_run`; ``decks`` is a
+        :class:`~winnow.tasks.dispatch.DeckSpec` and ``command`` may use ``{python}``.
+    """
+    return stages.render_selection(
+        selection,
+        names,
+        run_root=Path(run_root),
+        decks=decks,
+        command=command,
+        template_root=Path(template_root),
+    )

@@ -29,6 +29,7 @@ __all__ = [
     "collect_stage",
     "prepare_runs",
     "read_observations",
+    "render_selection",
     "sample_stage",
     "thin_stage",
 ]
@@ -231,24 +232,28 @@ def solver_command(command: Sequence[str]) -> list[str]:
     return [sys.executable if a == "{python}" else a for a in command]
 
 
-def prepare_runs(
-    config: StudyConfig,
-    base_dir: Path,
-    chain: Chain,
+def render_selection(
     selection: Selection,
+    names: Sequence[str],
     *,
+    run_root: Path,
+    decks: Any,
+    command: Sequence[str],
+    template_root: Path,
     positions: Sequence[int] | None = None,
 ) -> list[RunSpec]:
-    """Render one run folder per chosen point (or per listed position) and return the specs."""
+    """Render one run folder per chosen point (or per listed position); return the specs.
+
+    ``names`` are the parameter names of the selection's columns, ``decks`` a
+    :class:`~winnow.tasks.dispatch.DeckSpec`; ``command`` may use ``{python}``.
+    """
     from .dispatch import point_run_id, render_run
 
-    d = config.dispatch
-    decks, template_root = deck_spec(config, base_dir)
-    run_root = resolve(base_dir / "x", config.work_dir)
-    run_root.mkdir(parents=True, exist_ok=True)
+    argv = solver_command(command)
+    Path(run_root).mkdir(parents=True, exist_ok=True)
     specs = []
     for k in range(selection.m) if positions is None else positions:
-        params = {n: float(v) for n, v in zip(chain.names, selection.points[k], strict=True)}
+        params = {n: float(v) for n, v in zip(names, selection.points[k], strict=True)}
         idx = int(selection.indices[k])
         specs.append(
             render_run(
@@ -258,11 +263,32 @@ def prepare_runs(
                 weight=float(selection.weights[k]),
                 run_root=run_root,
                 decks=decks,
-                command=solver_command(d.command),
+                command=argv,
                 template_root=template_root,
             )
         )
     return specs
+
+
+def prepare_runs(
+    config: StudyConfig,
+    base_dir: Path,
+    chain: Chain,
+    selection: Selection,
+    *,
+    positions: Sequence[int] | None = None,
+) -> list[RunSpec]:
+    """Render the run folders of a study's chosen points (or of the listed positions)."""
+    decks, template_root = deck_spec(config, base_dir)
+    return render_selection(
+        selection,
+        chain.names,
+        run_root=resolve(base_dir / "x", config.work_dir),
+        decks=decks,
+        command=config.dispatch.command,
+        template_root=template_root,
+        positions=positions,
+    )
 
 
 def deck_spec(config: StudyConfig, base_dir: Path):
@@ -352,8 +378,16 @@ def collect_stage(
     outcomes: Mapping[str, RunOutcome],
     *,
     rng: Any = None,
+    recorded: Mapping[tuple[str, str], QoIValue] | None = None,
 ) -> tuple[list[QoIValue], list[QoIEstimate]]:
-    """Read every QoI from every run and make the weighted estimates with their uncertainty."""
+    """Read every QoI from every run and make the weighted estimates with their uncertainty.
+
+    ``recorded`` maps ``(reused_from, qoi name)`` to the value an earlier revision recorded
+    for a run reused from it: when the run folder no longer holds that run's output, the
+    recorded value is used (and says so) instead of counting the run as missing.
+    """
+    import dataclasses
+
     from .collect import estimate_qoi, read_qoi
 
     cheap = cheap_predictions(config, base_dir, chain, selection)
@@ -371,7 +405,16 @@ def collect_stage(
             o = outcomes.get(s.run_id)
             state = o.state if o is not None else "not_run"
             with _importable(_search_path(config, base_dir)):
-                vals.append(read_qoi(s.run_dir, spec_dict, run_id=s.run_id, run_state=state))
+                v = read_qoi(s.run_dir, spec_dict, run_id=s.run_id, run_state=state)
+            earlier = (recorded or {}).get((o.reused_from, q.name)) if o is not None else None
+            if v.status != "ok" and earlier is not None and earlier.status == "ok":
+                v = dataclasses.replace(
+                    earlier,
+                    run_id=s.run_id,
+                    reason=f"recorded by {o.reused_from} (reused run; its folder no longer "
+                    f"holds the output: {v.reason})",
+                )
+            vals.append(v)
         values.extend(vals)
         order = [positions[v.run_id] for v in vals]
         weights = selection.weights[order]

@@ -157,3 +157,31 @@ def test_second_run_of_same_config_repeats_nothing(finished_study):
     assert again.revision == "r0001" and again.up_to_date
     assert again.estimates == first.estimates
     assert {p: p.stat().st_mtime_ns for p in (tmp / "runs").rglob("winnow-outcome.json")} == mtimes
+
+
+def test_artifacts_appear_with_stable_keys(finished_study):
+    """Prefect artifacts of the flow run, read back from the API by their keys."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey
+
+    keys = [
+        "aquifer-demo-chain-diagnostics",
+        "aquifer-demo-chosen-points",
+        "aquifer-demo-runs-progress",
+        "aquifer-demo-run-outcomes",
+        "aquifer-demo-estimates",
+        "aquifer-demo-estimates-table",
+    ]
+    with get_client(sync_client=True) as client:
+        found = client.read_artifacts(
+            artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=keys))
+        )
+    by_key = {}
+    for a in found:
+        by_key.setdefault(a.key, a)
+    assert set(by_key) == set(keys)
+    assert by_key["aquifer-demo-runs-progress"].data == 100.0
+    points = json.loads(by_key["aquifer-demo-chosen-points"].data)
+    assert len(points) == 5
+    assert "drawdown_spring" in by_key["aquifer-demo-estimates"].data
+    assert "licensed" in by_key["aquifer-demo-estimates"].data  # the caution travels with it
