@@ -129,7 +129,7 @@ class AdaptiveMetropolis(Move):
     """Adaptive Metropolis (Haario, Saksman & Tamminen 2001) with a covariance pooled over
     the chains.
 
-    The Gaussian random-walk proposal of chain ``i`` is ``N(x_i, lambda_i s_d C)`` with
+    The Gaussian random-walk proposal of chain ``i`` is ``N(x_i, lambda^2 s_d C)`` with
     ``s_d = 2.4^2 / d`` (Haario et al. 2001, Eq. (2.1); the 2.38^2 / d of Gelman, Roberts &
     Gilks 1996 rounded) and ``C`` the empirical covariance of the draws plus ``eps I``.
     ``C`` is *pooled over the chains*: the within-chain covariance
@@ -140,13 +140,18 @@ class AdaptiveMetropolis(Move):
     every chain targets the same posterior, and it is the within-chain variance ``W`` of
     Gelman & Rubin (1992).
 
-    The global factor ``lambda_i`` (Andrieu & Thoms 2008, Algorithm 4) is adapted by a
-    Robbins-Monro step on ``log lambda`` towards acceptance 0.234 with gain ``t^-0.6``.
+    The global factor ``lambda`` (Andrieu & Thoms 2008, Algorithm 4), one for all chains, is
+    adapted by a Robbins-Monro step on ``log lambda`` towards a mean acceptance of 0.234
+    with gain ``t^-0.6`` (a lambda per chain let a chain that sat in a tail while it was tuned
+    keep a step size fit only there).
 
-    With a burn-in (the usual case), adaptation happens in the burn-in only, in windows that
-    double in length (25 or ``5 d`` iterations first, the last one stretched to end a
-    terminal stretch before the end of burn-in; the scheme of Stan's warm-up, common
-    practice). At the end of a window ``C`` becomes the window's pooled estimate (shrunk
+    With a burn-in (the usual case), ``C`` is learnt during the burn-in in windows that
+    double in length (25 or ``5 d`` iterations first) up to 1/8 of the burn-in, the last
+    one stretched to the start of a terminal stretch (10 % of the burn-in, at least 50
+    iterations); the windowed scheme of the Stan Reference Manual's warm-up, common
+    practice. The cap matters for a badly scaled target: the walk-in from prior draws can
+    take a third of the burn-in, and each window's estimate speeds up the next part of it
+    (the 10-D benchmark Gaussian needs it: without the cap R-hat stayed near 3). At the end of a window ``C`` becomes the window's pooled estimate (shrunk
     towards its diagonal by ``n / (n + 5)``, as Stan does), the statistics restart and
     ``lambda`` is tuned afresh; the first window walks in with ``C_0 = diag(0.1 prior
     scale)^2``. Windows forget the walk-in from an over-dispersed start, where a
