@@ -213,3 +213,43 @@ def test_new_revision_reuses_runs_with_the_same_key(prefect_harness, tmp_path):
         _, (est,) = store.read_results("r0002")
     exact = float(np.mean(chain.samples[:, 0] + 2.0 * chain.samples[:, 1])) + 0.25
     assert float(est.control_variate["mean"]) == pytest.approx(exact, abs=1e-12)
+
+
+# --------------------------------------------------------------------------------------------
+# scale-out: the dispatch flow on a Dask cluster given by its address
+# --------------------------------------------------------------------------------------------
+@pytest.mark.slow
+def test_dispatch_flow_on_a_dask_cluster_address(prefect_harness, tmp_path):
+    from distributed import LocalCluster
+
+    from winnow.flows.dispatch import dispatch_flow
+    from winnow.tasks.dispatch import DeckSpec
+    from winnow.tasks.stages import render_selection
+    from winnow.tasks.thinning import thin
+
+    rng = np.random.default_rng(5)
+    draws = rng.normal([1.0, 0.5], [0.1, 0.05], size=(2000, 2))
+    sel = thin(draws, 3, rng=5, n_features=256)
+    here = Path(__file__).parent / "study_models"
+    specs = render_selection(
+        sel,
+        ["a", "b"],
+        run_root=tmp_path / "runs",
+        decks=DeckSpec(templates=["line.deck.j2"]),
+        command=["{python}", str(here / "tiny_solver.py"), "{deck}"],
+        template_root=here,
+    )
+    with LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
+    ) as cluster:
+        outcomes = dispatch_flow(
+            specs,
+            runner={"dask": {"address": cluster.scheduler_address}},
+            concurrency=2,
+            timeout=60,
+            outputs=["result.json"],
+        )
+    assert [o.state for o in outcomes] == ["succeeded"] * 3
+    for s, p in zip(specs, sel.points, strict=True):
+        y2 = json.loads((s.run_dir / "result.json").read_text())["y2"]
+        assert y2 == pytest.approx(p[0] + 2 * p[1] + 0.25, rel=1e-12)
