@@ -253,3 +253,21 @@ def test_dispatch_flow_on_a_dask_cluster_address(prefect_harness, tmp_path):
     for s, p in zip(specs, sel.points, strict=True):
         y2 = json.loads((s.run_dir / "result.json").read_text())["y2"]
         assert y2 == pytest.approx(p[0] + 2 * p[1] + 0.25, rel=1e-12)
+
+
+def test_prefect_yaml_example_points_at_the_scheduled_flow():
+    """The deployment example's entrypoint and parameters name real things in this repo."""
+    import yaml
+    from prefect.utilities.importtools import load_script_as_module
+
+    root = Path(__file__).resolve().parents[1]
+    spec = yaml.safe_load((root / "examples" / "prefect.yaml").read_text())
+    (dep,) = spec["deployments"]
+    path, name = dep["entrypoint"].split(":")
+    flow_obj = getattr(load_script_as_module(str(root / path)), name)
+    assert flow_obj.name == "winnow-scheduled-study"
+    assert set(dep["parameters"]) == {"config_path"}
+    assert (root / dep["parameters"]["config_path"]).is_file()
+    from prefect.client.schemas.schedules import CronSchedule
+
+    assert CronSchedule(cron=dep["schedules"][0]["cron"]).cron == "0 6 * * *"
