@@ -245,19 +245,28 @@ def _prepare(x: np.ndarray, nonfinite: str, standardise: bool, chunk: int) -> _P
         first = finite_rows[first]
     d = x.shape[1]
     if standardise:
-        # two chunked passes over the finite rows, float64 sums
+        # chunked passes over the finite rows, float64 sums; every column is first divided
+        # by its largest magnitude so that sums of squares cannot overflow (values up to
+        # ~1.8e308 are valid chains: a column of 1e300s standardises like any other)
         n = inverse.size
+
+        def rows(a: int, b: int) -> np.ndarray:
+            return x[a:b] if finite_rows is None else x[finite_rows[a:b]]
+
+        big = np.zeros(d)
+        for a in range(0, n, chunk):
+            np.maximum(big, np.abs(rows(a, min(n, a + chunk))).max(axis=0), out=big)
+        big[big == 0] = 1.0
         total = np.zeros(d)
         for a in range(0, n, chunk):
-            b = min(n, a + chunk)
-            total += (x[a:b] if finite_rows is None else x[finite_rows[a:b]]).sum(axis=0)
-        mean = total / n
+            total += (rows(a, min(n, a + chunk)) / big).sum(axis=0)
+        mean_u = total / n
         sq = np.zeros(d)
         for a in range(0, n, chunk):
-            b = min(n, a + chunk)
-            part = (x[a:b] if finite_rows is None else x[finite_rows[a:b]]) - mean
+            part = rows(a, min(n, a + chunk)) / big - mean_u
             sq += np.einsum("ij,ij->j", part, part)
-        scale = np.sqrt(sq / n)
+        mean = mean_u * big
+        scale = np.sqrt(sq / n) * big
         scale[~(np.isfinite(scale) & (scale > 0))] = 1.0  # constant column: leave as is
     else:
         mean, scale = np.zeros(d), np.ones(d)
