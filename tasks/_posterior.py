@@ -174,14 +174,15 @@ class LogPosterior:
         if x.ndim != 2 or x.shape[1] != self.d:
             raise ValueError(f"parameter rows must have shape (k, {self.d}), got {x.shape}")
         out = self.priors.logpdf(x)
-        finite = np.isfinite(out)
-        all_inside = bool(finite.all())
-        inside = None if all_inside else np.flatnonzero(finite)
+        # A finite sum means every term is finite (one reduction instead of a mask and a
+        # test; an overflowing sum only sends us down the exact path).
+        all_inside = math.isfinite(out.sum())
+        inside = None if all_inside else np.flatnonzero(np.isfinite(out))
         if all_inside or inside.size:  # type: ignore[union-attr]
             ll = self._evaluate(x if all_inside else x[inside])
             self.n_evals += len(ll)
-            nonfinite = ~np.isfinite(ll)  # outside the model's domain: see module notes
-            if nonfinite.any():
+            if not math.isfinite(ll.sum()):  # outside the model's domain: see module notes
+                nonfinite = ~np.isfinite(ll)
                 self.n_nonfinite += int(np.count_nonzero(nonfinite))
                 ll = np.where(nonfinite, -np.inf, ll)
             if all_inside:
