@@ -98,12 +98,22 @@ def run_point(spec: RunSpec, options: RunOptions) -> Any:
 
     outcome = execute_run(spec, options)
     if outcome.state != "succeeded":
-        return Failed(message=f"run {spec.run_id} {outcome.state}: {outcome.message}")
+        # the outcome travels with the state: the run folder (and its journal) may be gone
+        return Failed(
+            message=f"run {spec.run_id} {outcome.state}: {outcome.message}", data=outcome
+        )
     return outcome
 
 
 def _outcome_of_failed(spec: RunSpec, state: Any, since: float) -> RunOutcome:
-    """Outcome of a failed task run: the journal it wrote, else the state's message."""
+    """Outcome of a failed task run: the one it returned with its state, else the journal it
+    wrote, else the state's message (a task that crashed before running the solver)."""
+    try:
+        carried = state.result(raise_on_failure=False)
+    except Exception:  # noqa: BLE001 - an unreadable result falls back to the journal
+        carried = None
+    if isinstance(carried, RunOutcome) and carried.run_id == spec.run_id:
+        return carried
     journalled = read_outcome(spec.run_dir)
     if (
         journalled is not None
