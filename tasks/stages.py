@@ -27,10 +27,13 @@ __all__ = [
     "Observations",
     "cheap_predictions",
     "collect_stage",
+    "deck_spec",
+    "preflight",
     "prepare_runs",
     "read_observations",
     "render_selection",
     "sample_stage",
+    "solver_command",
     "thin_stage",
 ]
 
@@ -454,6 +457,25 @@ def _prior_midpoint(p) -> float:
     return float(pr.mu)
 
 
+def _check_creatable(field: str, path: Path, *, is_dir: bool) -> None:
+    """Refuse a store or run folder path that cannot be made (before anything is written)."""
+    import os
+
+    if path.exists():
+        if is_dir and not path.is_dir():
+            raise ValueError(f"{field}: {path} exists and is not a folder")
+        if not is_dir and path.is_dir():
+            raise ValueError(f"{field}: {path} is a folder; expected an HDF5 file path")
+        return
+    parent = path.parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        raise ValueError(f"{field}: cannot create {path}: {parent} is a file, not a folder")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise ValueError(f"{field}: cannot create {path}: {parent} is not writable")
+
+
 def preflight(config: StudyConfig, base_dir: Path) -> None:
     """Check a study's files, model, templates and command without writing anything.
 
@@ -547,6 +569,8 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
             )
         except ValueError as exc:
             raise ValueError(f"dispatch.templates: {exc}") from None
+    for field, rel in (("store", config.store), ("work_dir", config.work_dir)):
+        _check_creatable(field, resolve(here, rel), is_dir=field == "work_dir")
     exe = solver_command(d.command)[0]
     if shutil.which(exe) is None and not resolve(here, exe).is_file():
         raise FileNotFoundError(
