@@ -10,8 +10,10 @@ removes the burn-in, and attaches the convergence diagnostics of
 Samplers
 --------
 ``adaptive_metropolis``
-    Adaptive Metropolis (Haario, Saksman & Tamminen 2001), each chain adapting its own
-    proposal covariance; a global proposal scale is tuned during burn-in only.
+    Adaptive Metropolis (Haario, Saksman & Tamminen 2001) with the proposal covariance
+    pooled over the chains (learnt in windows during burn-in, then plain AM); a global
+    proposal scale is tuned during burn-in only. Chains that stray far below the others
+    during burn-in are moved back, as ensemble walkers are (see ``_reset_strays``).
 ``ensemble``
     Affine-invariant ensemble sampler with the stretch move (Goodman & Weare 2010); the
     chains are the walkers of one ensemble (at least ``max(4, 2 d)`` of them; ``2 d + 2``
