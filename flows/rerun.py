@@ -59,7 +59,7 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
         if "runs" in done:
             specs, stored = w.read_runs(rev)
         else:  # killed before the runs were recorded: the run folders' journals know
-            specs, stored = prepare_runs_task(config, base, chain, selection), []
+            specs, stored = prepare_runs_task(config, base, chain, selection, revision=rev), []
         outcomes: dict[str, RunOutcome] = {o.run_id: o for o in stored}
         pending = set(select_for_rerun(outcomes))
         pending |= {s.run_id for s in specs if s.run_id not in outcomes}
@@ -82,7 +82,9 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
             new_sel = replace_points(chain.samples, selection, positions, by="position")
             known_points = {s.point_index: s for s in specs}
             fresh = [k for k, i in enumerate(new_sel.indices) if int(i) not in known_points]
-            new_specs = prepare_runs_task(config, base, chain, new_sel, positions=fresh)
+            new_specs = prepare_runs_task(
+                config, base, chain, new_sel, revision=rev, positions=fresh
+            )
             log.info(
                 "replacing %d point(s) that did not succeed by %d substitute(s)",
                 len(positions),
@@ -113,6 +115,7 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
             selection,
             in_selection,
             outcomes,
+            revision=rev,
             recorded=recorded_values(w, outcomes.values()),
         )
         w.write_results(rev, values, estimates)

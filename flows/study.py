@@ -100,6 +100,19 @@ def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
     return files
 
 
+def _name_flow_run(name: str) -> None:
+    """Rename the running flow run once its revision is known (best effort)."""
+    if flow_run.id is None:
+        return
+    from prefect.client.orchestration import get_client
+
+    try:
+        with get_client(sync_client=True) as client:
+            client.update_flow_run(flow_run.id, name=name)
+    except Exception as exc:  # noqa: BLE001 - a name is cosmetic; never fail a study on it
+        get_run_logger().debug("could not rename the flow run: %s", exc)
+
+
 def _flow_run_name() -> str:
     params = flow_run.parameters
     cfg = params.get("config")
@@ -191,6 +204,7 @@ def study_flow(
         else:
             log.info("study %s: resuming revision %s", config.study.name, rev)
         done = store.stages_done(rev)
+        _name_flow_run(f"{config.study.name}-{rev}")
 
         # ---- sample ------------------------------------------------------------------
         if "chain" in done:
@@ -203,6 +217,7 @@ def study_flow(
             chain = sample_task(
                 config,
                 base,
+                revision=rev,
                 checkpoint=checkpoint,
                 resume=store.load_checkpoint(rev, "sample"),
             )
@@ -214,12 +229,12 @@ def study_flow(
         if "selection" in done:
             selection = store.read_selection(rev)
         else:
-            selection = thin_stage_task(config, chain)
+            selection = thin_stage_task(config, chain, revision=rev)
             store.write_selection(rev, selection)
         _selection_artifact(chain, selection, config.study.name)
 
         # ---- dispatch --------------------------------------------------------------------
-        specs = prepare_runs_task(config, base, chain, selection)
+        specs = prepare_runs_task(config, base, chain, selection, revision=rev)
         if "runs" in done and "results" in done:
             _, stored = store.read_runs(rev)
             outcomes = {o.run_id: o for o in stored}
@@ -240,6 +255,7 @@ def study_flow(
                 selection,
                 specs,
                 outcomes,
+                revision=rev,
                 recorded=recorded_values(store, outcomes.values()),
             )
             store.write_results(rev, values, estimates)

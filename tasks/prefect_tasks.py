@@ -46,30 +46,49 @@ def thin_task(samples: npt.ArrayLike | Chain, budget: int, **options: Any) -> Se
     return thin(data, budget, **options)
 
 
-@task(name="sample", task_run_name="sample-{config.study.name}")
-def sample_task(config: StudyConfig, base_dir: Path, **kwargs: Any) -> Chain:
+# Task run names show the study and revision: "sample-aquifer-demo-r0002".
+@task(name="sample", task_run_name="sample-{config.study.name}-{revision}")
+def sample_task(config: StudyConfig, base_dir: Path, *, revision: str = "", **kwargs: Any) -> Chain:
     """Calibrate the study's cheap model or import its chain (see :func:`stages.sample_stage`)."""
     return stages.sample_stage(config, Path(base_dir), **kwargs)
 
 
-@task(name="thin-stage", task_run_name="thin-{config.study.name}-{config.budget}-points")
-def thin_stage_task(config: StudyConfig, chain: Chain, **kwargs: Any) -> Selection:
+@task(name="thin-stage", task_run_name="thin-{config.study.name}-{revision}")
+def thin_stage_task(
+    config: StudyConfig, chain: Chain, *, revision: str = "", **kwargs: Any
+) -> Selection:
     """Thin a study's chain with the study's settings (see :func:`stages.thin_stage`)."""
     return stages.thin_stage(config, chain, **kwargs)
 
 
-@task(name="render-decks", task_run_name="render-decks-{config.study.name}")
+@task(name="render-decks", task_run_name="render-decks-{config.study.name}-{revision}")
 def prepare_runs_task(
-    config: StudyConfig, base_dir: Path, chain: Chain, selection: Selection, **kwargs: Any
+    config: StudyConfig,
+    base_dir: Path,
+    chain: Chain,
+    selection: Selection,
+    *,
+    revision: str = "",
+    **kwargs: Any,
 ) -> list[RunSpec]:
     """Render one run folder per chosen point (see :func:`stages.prepare_runs`)."""
     return stages.prepare_runs(config, Path(base_dir), chain, selection, **kwargs)
 
 
-@task(name="collect", task_run_name="collect-{config.study.name}")
-def collect_task(config: StudyConfig, base_dir: Path, *args: Any, **kwargs: Any):
+@task(name="collect", task_run_name="collect-{config.study.name}-{revision}")
+def collect_task(
+    config: StudyConfig,
+    base_dir: Path,
+    chain: Chain,
+    selection: Selection,
+    specs: list[RunSpec],
+    outcomes: dict[str, Any],
+    *,
+    revision: str = "",
+    **kwargs: Any,
+) -> tuple[list[Any], list[Any]]:
     """Read the QoIs and make the weighted estimates (see :func:`stages.collect_stage`)."""
-    return stages.collect_stage(config, Path(base_dir), *args, **kwargs)
+    return stages.collect_stage(config, Path(base_dir), chain, selection, specs, outcomes, **kwargs)
 
 
 @task(name="render-runs", task_run_name="render-{run_root}")

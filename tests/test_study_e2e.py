@@ -116,7 +116,10 @@ def test_estimate_matches_direct_evaluation(finished_study):
         _, (est,) = store.read_results()
     # direct: read each run folder's result.json and weight it by the chosen weights
     q = np.array(
-        [json.loads((s.run_dir / "result.json").read_text())["qoi"]["drawdown_spring"] for s in specs]
+        [
+            json.loads((s.run_dir / "result.json").read_text())["qoi"]["drawdown_spring"]
+            for s in specs
+        ]
     )
     w = sel.weights
     mean = float(np.sum(w * q))
@@ -185,3 +188,28 @@ def test_artifacts_appear_with_stable_keys(finished_study):
     assert len(points) == 5
     assert "drawdown_spring" in by_key["aquifer-demo-estimates"].data
     assert "licensed" in by_key["aquifer-demo-estimates"].data  # the caution travels with it
+
+
+def test_run_names_show_study_revision_and_point(finished_study):
+    """Flow and task runs in the Prefect API carry the study, the revision and point ids."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterId
+
+    tmp, _, _, _ = finished_study
+    with RunStore.open_read(tmp / "study.h5") as store:
+        flow_run_id = store.read_provenance("r0001")["flow_run_id"]
+        specs, _ = store.read_runs("r0001")
+    with get_client(sync_client=True) as client:
+        run = client.read_flow_run(flow_run_id)
+        tasks = client.read_task_runs(
+            flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[run.id]))
+        )
+        solver_runs = client.read_task_runs()
+    assert run.name == "aquifer-demo-r0001"
+    names = {t.name for t in tasks}
+    assert {
+        "sample-aquifer-demo-r0001",
+        "thin-aquifer-demo-r0001",
+        "collect-aquifer-demo-r0001",
+    } <= names
+    assert {f"run-{s.run_id}" for s in specs} <= {t.name for t in solver_runs}
