@@ -334,6 +334,9 @@ def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | 
     return latest if stored_inputs == current else None
 
 
+_DISPATCH_BATCH = 400
+
+
 def _dispatch(
     config: StudyConfig, base: Path, specs, known: dict[str, str], log
 ) -> dict[str, RunOutcome]:
@@ -373,7 +376,15 @@ def _dispatch(
             runner["batch"]["template"] = str(resolve(base / "x", runner["batch"]["template"]))
         result = dispatch(specs, runner=make_runner(runner, concurrency=d.concurrency), **common)
     else:
-        result = dispatch_flow(specs, runner=runner, concurrency=d.concurrency, **common)
+        # The Prefect server refuses flow-run parameters over 512 KiB (about 1,000 specs), so
+        # large studies are dispatched as consecutive subflows of _DISPATCH_BATCH runs, each
+        # given only the known successes of its own runs.
+        result = []
+        for a in range(0, len(specs), _DISPATCH_BATCH):
+            batch = list(specs[a : a + _DISPATCH_BATCH])
+            keys = {s.key for s in batch}
+            part = dict(common, known_successes={k: v for k, v in known.items() if k in keys})
+            result.extend(dispatch_flow(batch, runner=runner, concurrency=d.concurrency, **part))
     outcomes = {o.run_id: o for o in result}
     log.info(
         "dispatch: %d runs; %d reused without running",
