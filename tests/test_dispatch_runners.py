@@ -101,7 +101,9 @@ def test_runner_contract(kind, tmp_path, request):
     outs = dispatch(
         specs,
         runner=runner,
-        timeout=1.5,
+        # long enough for a Python solver to start on a loaded 2-core machine (1.5 s was
+        # not: a quick mode then timed out), short enough for the sleeping mode
+        timeout=6.0,
         retries=1,
         kill_grace=0.5,
         outputs=["result.txt"],
