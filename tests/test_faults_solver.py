@@ -129,7 +129,7 @@ def test_hang_is_timed_out_and_whole_process_tree_gone(mixed):
     assert o.state == "timed_out"
     assert len(o.attempts) == 2
     assert all(a.timed_out and a.exit_status is None for a in o.attempts)
-    assert all(a.ended - a.started >= TIMEOUT for a in o.attempts)
+    assert all(f"{TIMEOUT:g} s timeout" in a.error for a in o.attempts)
     grandchildren = [
         int(p) for p in (mixed["folder"] / "state" / "grandchildren.log").read_text().split()
     ]
