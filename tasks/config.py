@@ -258,7 +258,13 @@ class SampleSettings(_Model):
         description="adaptive_metropolis (Haario et al. 2001) or ensemble (affine-invariant "
         "stretch move, Goodman & Weare 2010).",
     )
-    chains: int = Field(4, ge=1, le=256, description="Number of chains (or ensemble walkers).")
+    chains: int | None = Field(
+        None,
+        ge=1,
+        le=256,
+        description="Number of chains (or ensemble walkers); default 4 chains for "
+        "adaptive_metropolis and 2d+2 walkers for the ensemble samplers.",
+    )
     draws: int = Field(4000, ge=10, description="Draws per chain, burn-in included.")
     burn_in: int | Literal["half"] = Field(
         "half", description="Draws dropped from the start of each chain, or 'half'."
