@@ -253,10 +253,11 @@ class SampleSettings(_Model):
     import_chain: ImportSettings | None = Field(
         None, description="Import this chain instead of sampling."
     )
-    sampler: Literal["adaptive_metropolis", "ensemble"] = Field(
+    sampler: Literal["adaptive_metropolis", "ensemble", "de_mcmc"] = Field(
         "adaptive_metropolis",
-        description="adaptive_metropolis (Haario et al. 2001) or ensemble (affine-invariant "
-        "stretch move, Goodman & Weare 2010).",
+        description="adaptive_metropolis (Haario et al. 2001), ensemble (affine-invariant "
+        "stretch move, Goodman & Weare 2010) or de_mcmc (differential evolution, ter Braak "
+        "2006).",
     )
     chains: int | None = Field(
         None,
