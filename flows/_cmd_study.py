@@ -24,32 +24,56 @@ def _load(config_path: Path):
         fail(str(exc))
 
 
+def _fmt(v) -> str:
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    if isinstance(v, list):
+        shown = ", ".join(_fmt(x) for x in v[:4])
+        return f"[{shown}{', ...' if len(v) > 4 else ''}] ({len(v)} values)"
+    return str(v)
+
+
 def _print_result(result) -> None:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
+
+    from winnow.tasks.collect import UNCERTAINTY_LABELS
 
     console = Console()
     state = "up to date (nothing new to run)" if result.up_to_date else "done"
-    console.print(f"[bold]{result.revision}[/bold] of {result.store}: {state}")
-    counts = ", ".join(f"{k}: {v}" for k, v in sorted(result.counts.items()))
-    console.print(f"runs: {counts}; reused: {result.reused}")
-    table = Table(title="Estimates (weighted over the chosen points)")
-    for col in ("quantity", "units", "mean", "sd", "quantiles", "error sources"):
-        table.add_column(col)
+    console.print(f"[bold]{result.revision}[/bold] of {Path(result.store).resolve()}: {state}")
+    counts = ", ".join(f"{k} {v}" for k, v in sorted(result.counts.items()))
+    console.print(f"solver runs: {counts}; reused from earlier runs: {result.reused}")
     for name, e in result.estimates.items():
-        q = ", ".join(
-            f"{float(k):g}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}"
-            for k, v in e["quantiles"].items()
+        u = e["units"]
+        table = Table(
+            title=escape(f"{name} [{u}], weighted over {e['n_used']} chosen points"),
+            show_header=False,
+            title_justify="left",
         )
-        u = ", ".join(
-            f"{k} {v:.2g}" if isinstance(v, float) else f"{k} {v}"
-            for k, v in e["uncertainty"].items()
+        table.add_column("what", style="bold")
+        table.add_column("value")
+        table.add_row("mean ± sd", f"{_fmt(e['mean'])} ± {_fmt(e['sd'])} {u}")
+        table.add_row(
+            "quantiles",
+            ", ".join(f"{float(k):.0%}: {_fmt(v)}" for k, v in e["quantiles"].items()),
         )
-        mean = e["mean"] if not isinstance(e["mean"], float) else f"{e['mean']:.4g}"
-        sd = e["sd"] if not isinstance(e["sd"], float) else f"{e['sd']:.4g}"
-        table.add_row(name, e["units"], str(mean), str(sd), q, u)
-    console.print(table)
-    console.print(f"report: {result.report}")
+        for thr, p in e.get("exceedance", {}).items():
+            table.add_row(f"P(> {float(thr):g} {u})", _fmt(p))
+        cv = e.get("control_variate")
+        if cv:
+            table.add_row(
+                "multi-fidelity estimate",
+                f"{_fmt(cv['mean'])} ± {_fmt(cv['se'])} {u} "
+                f"(fidelity correlation {_fmt(cv.get('correlation'))})",
+            )
+        for key, v in e["uncertainty"].items():
+            table.add_row(UNCERTAINTY_LABELS.get(key, key), f"{_fmt(v)} {u}")
+        if e["n_missing"]:
+            table.add_row("left out", f"{e['n_missing']} run(s) without a value")
+        console.print(table)
+    console.print(f"report: {Path(result.report).resolve()}")
     console.print(
         "[dim]Caution: estimates feed engineering judgement; decisions on water supply or "
         "safety need review under local regulations and by a licensed professional.[/dim]"

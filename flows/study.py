@@ -129,12 +129,17 @@ def _estimate_summary(est) -> dict[str, Any]:
         "sd": f(est.sd),
         "units": est.units,
         "quantiles": {str(k): f(v) for k, v in est.quantiles.items()},
+        "exceedance": {str(k): f(v) for k, v in est.exceedance.items()},
         "uncertainty": {k: f(v) for k, v in est.uncertainty.items()},
         "n_used": est.n_used,
         "n_missing": est.n_missing,
     }
     if est.control_variate:
-        out["control_variate"] = {k: f(v) for k, v in est.control_variate.items()}
+        out["control_variate"] = {
+            k: f(est.control_variate[k])
+            for k in ("mean", "se", "correlation")
+            if k in est.control_variate
+        }
     return out
 
 
