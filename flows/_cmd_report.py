@@ -34,7 +34,10 @@ def register(app: typer.Typer) -> None:
         out: Annotated[
             Path | None,
             typer.Option(
-                "--out", "-o", help="Folder for the report (default: 'report' beside the store)."
+                "--out",
+                "-o",
+                help="Folder for the report (default: '<store name>-report' beside the store, where "
+                "winnow run writes it).",
             ),
         ] = None,
         csv: Annotated[
@@ -46,7 +49,8 @@ def register(app: typer.Typer) -> None:
             raise FileNotFoundError(f"STORE: file not found: {store}")
         if not store.is_file():
             raise UsageError(f"STORE: expected an HDF5 run store file, got a folder: {store}")
-        out_dir = out if out is not None else store.resolve().parent / "report"
+        default = store.resolve().with_name(store.stem + "-report")
+        out_dir = out if out is not None else default
         if out_dir.exists() and not out_dir.is_dir():
             raise UsageError(f"--out: expected a folder, got an existing file: {out_dir}")
         load_report_data = _loader()

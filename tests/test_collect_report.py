@@ -361,8 +361,8 @@ def test_report_command_writes_report(cli_app, tmp_path, monkeypatch):
     res = runner.invoke(app, ["report", str(store), "--revision", "r3", "--csv"])
     assert res.exit_code == 0, res.output
     assert seen["args"] == (store, "r3")
-    assert (tmp_path / "report" / "report.html").is_file()
-    assert (tmp_path / "report" / "points.csv").is_file()
+    assert (tmp_path / "study-report" / "report.html").is_file()
+    assert (tmp_path / "study-report" / "points.csv").is_file()
     assert "Caution" in res.output
 
 
