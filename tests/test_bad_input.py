@@ -288,14 +288,9 @@ def test_single_repeated_row_is_refused(tmp_path):
     assert json.loads(out.read_text())["weights"] == [1.0]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug in tasks/thinning.py (_prepare): the column variance overflows for values "
-    "near 1e300, the scale silently falls back to 1.0 and the features turn NaN; the command "
-    "then fails with 'not enough candidate rows left', naming neither the file nor the cause",
-)
 def test_huge_values_are_thinned_like_any_chain(tmp_path):
     # 1e300 x N(0, 1) is a valid float64 chain; in standardised coordinates it is N(0, 1)
+    # (regression: the variance used to overflow, features turned NaN; fixed in b3ee1b1)
     huge = np.random.default_rng(9).normal(size=(200, 2)) * 1e300
     np.save(tmp_path / "huge.npy", huge)
     out = tmp_path / "h.json"

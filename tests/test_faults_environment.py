@@ -68,13 +68,8 @@ def test_work_dir_that_cannot_be_created_keeps_the_store_and_resumes(tmp_path, p
     assert check(store).ok
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="tasks/stages.py preflight does not check that work_dir can be created: "
-    "`winnow run` creates the store, commits chain and selection, then ends in a traceback "
-    "(exit 1) instead of a one-line refusal (exit 2) with nothing written",
-)
 def test_work_dir_under_a_file_is_refused_before_anything_is_written(tmp_path):
+    # regression: preflight used to miss it (store created, then a traceback); fixed in 65d646a
     cfg = make_study(tmp_path, work_dir="blocker/runs")
     (tmp_path / "blocker").write_text("a regular file\n")
     before = snapshot(tmp_path)

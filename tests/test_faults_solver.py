@@ -191,12 +191,9 @@ def test_solver_deleting_its_run_folder_is_recorded(mixed):
     assert mixed["calls"][s.run_id] == 1  # the retry could not start in a missing folder
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug in flows/dispatch.py: a failed run's outcome is rebuilt from its folder's "
-    "journal; with the folder gone the attempts (exit status, tails) are lost",
-)
 def test_solver_deleting_its_run_folder_keeps_its_attempts(mixed):
+    # regression: the outcome used to be rebuilt from the (deleted) folder's journal, losing
+    # the attempts; fixed in a20d666 (the outcome travels with the Failed state)
     o, _, s = _one(mixed, "delete_folder")
     # attempt 1 ran (exit 0, outputs gone), attempt 2 could not start: both must be recorded
     assert len(o.attempts) == 2
