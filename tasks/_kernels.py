@@ -35,6 +35,7 @@ References
 
 from __future__ import annotations
 
+import abc
 from typing import Literal
 
 import numpy as np
@@ -51,7 +52,7 @@ __all__ = [
 KernelName = Literal["gaussian", "laplace", "matern32", "matern52"]
 
 
-class Kernel:
+class Kernel(abc.ABC):
     """A shift-invariant kernel with unit bandwidth and its spectral sampler.
 
     Subclasses fill in ONE hook, :meth:`_profile`, the kernel as a function of the scaled
@@ -66,9 +67,9 @@ class Kernel:
     mix: Literal["none", "student", "cauchy"] = "none"
     dof: float = np.inf
 
+    @abc.abstractmethod
     def _profile(self, s: np.ndarray) -> np.ndarray:
         """Kernel value at scaled distance ``s = |x - y| / l`` (in place allowed)."""
-        raise NotImplementedError  # pragma: no cover - abstract hook
 
     # ---------------------------------------------------------------- shared machinery
     def n_mix(self, d: int) -> int:

@@ -40,6 +40,7 @@ References
 
 from __future__ import annotations
 
+import abc
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -140,7 +141,7 @@ class SelectorResult:
     info: dict[str, Any] = field(default_factory=dict)
 
 
-class Selector:
+class Selector(abc.ABC):
     """Base class of the selectors: subclasses implement ONE hook, :meth:`_select`."""
 
     name: str = ""
@@ -158,10 +159,11 @@ class Selector:
     def defaults(cls) -> dict[str, Any]:
         return {}
 
+    @abc.abstractmethod
     def _select(
         self, problem: Problem, m: int, rng: np.random.Generator, progress: Progress | None
     ) -> SelectorResult:
-        raise NotImplementedError  # pragma: no cover - abstract hook
+        """Choose ``m`` rows for ``problem`` (the one hook a selector implements)."""
 
     def select(
         self,
