@@ -35,13 +35,7 @@ _COMMAND_MODULES = (
 
 def _register_all() -> None:
     for name in _COMMAND_MODULES:
-        try:
-            module = importlib.import_module(name)
-        except ModuleNotFoundError as exc:
-            if exc.name != name:
-                raise
-            continue  # that area has no commands yet
-        module.register(app)
+        importlib.import_module(name).register(app)
 
 
 _register_all()
