@@ -808,6 +808,25 @@ def extend(
     )
 
 
+def _selection_rows(selection: Selection, items: Any, by: str, name: str) -> np.ndarray:
+    """Chain rows named by ``items``: selection positions (``by="position"``) or chain row
+    indices that must be in the selection (``by="index"``)."""
+    _validate_choice("by", by, ("index", "position"))
+    a = np.asarray(items)
+    if a.ndim != 1 or (a.size and not np.issubdtype(a.dtype, np.integer)):
+        raise TypeError(f"{name} must be a 1-D sequence of integers, got {items!r}")
+    a = a.astype(np.int64)
+    idx = np.asarray(selection.indices, dtype=np.int64)
+    if by == "position":
+        if np.any(a < 0) or np.any(a >= idx.size):
+            raise ValueError(f"{name} positions must be in 0..{idx.size - 1}, got {a.tolist()}")
+        return idx[a]
+    missing = np.setdiff1d(a, idx)
+    if missing.size:
+        raise ValueError(f"{name} has indices not in the selection: {missing.tolist()}")
+    return a
+
+
 def replace(
     samples: npt.ArrayLike | Chain,
     selection: Selection,
@@ -830,21 +849,8 @@ def replace(
     """
     x = _validate_samples(samples)
     _check_belongs(x, selection)
-    _validate_choice("by", by, ("index", "position"))
-    f = np.asarray(failed)
-    if f.ndim != 1 or (f.size and not np.issubdtype(f.dtype, np.integer)):
-        raise TypeError(f"failed must be a 1-D sequence of integers, got {failed!r}")
-    f = f.astype(np.int64)
+    failed_rows = _selection_rows(selection, failed, by, "failed")
     idx = np.asarray(selection.indices, dtype=np.int64)
-    if by == "position":
-        if np.any(f < 0) or np.any(f >= idx.size):
-            raise ValueError(f"failed positions must be in 0..{idx.size - 1}, got {f.tolist()}")
-        failed_rows = idx[f]
-    else:
-        missing = np.setdiff1d(f, idx)
-        if missing.size:
-            raise ValueError(f"failed has indices not in the selection: {missing.tolist()}")
-        failed_rows = f
     survivors = idx[~np.isin(idx, failed_rows)]
     s = _settings_from(selection, method, options)
     return _run(
@@ -919,22 +925,11 @@ def reweight(
     """
     x = _validate_samples(samples)
     _check_belongs(x, selection)
-    _validate_choice("by", by, ("index", "position"))
-    k = np.asarray(keep)
-    if k.ndim != 1 or k.size == 0 or not np.issubdtype(k.dtype, np.integer):
+    if np.size(keep) == 0:
         raise ValueError(f"keep must be a non-empty 1-D sequence of integers, got {keep!r}")
-    idx = np.asarray(selection.indices, dtype=np.int64)
-    if by == "position":
-        if np.any(k < 0) or np.any(k >= idx.size):
-            raise ValueError(f"keep positions must be in 0..{idx.size - 1}, got {k.tolist()}")
-        rows = idx[k]
-    else:
-        missing = np.setdiff1d(k, idx)
-        if missing.size:
-            raise ValueError(f"keep has indices not in the selection: {missing.tolist()}")
-        rows = k.astype(np.int64)
+    rows = _selection_rows(selection, keep, by, "keep")
     if np.unique(rows).size != rows.size:
-        raise ValueError(f"keep names a point twice: {k.tolist()}")
+        raise ValueError(f"keep names a point twice: {np.asarray(keep).tolist()}")
     s = _settings_from(selection, None, {})
     # every point is fixed, so no selection happens: only the weights are solved
     return _run(x, rows.size, s, selection.seed, progress, fixed_rows=rows, purpose="reweight")
