@@ -173,7 +173,25 @@ class LogPosterior:
             x = np.atleast_2d(np.asarray(x, dtype=np.float64))  # the sampler's rows skip this
         if x.ndim != 2 or x.shape[1] != self.d:
             raise ValueError(f"parameter rows must have shape (k, {self.d}), got {x.shape}")
-        out = self.priors.logpdf(x)
+        with np.errstate(all="ignore"):  # non-finite model output: see the module notes
+            return self._add_model(x, self.priors.logpdf(x))
+
+    def at_unconstrained(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The samplers' entry: rows ``u`` (k, d) of the unconstrained space (float64).
+
+        Returns ``(log posterior + log-Jacobian, log posterior, x)`` at ``x = to_user(u)``,
+        shapes (k,), (k,), (k, d), with the prior's map, density and Jacobian computed in
+        one pass (:meth:`PriorSet.transform`). Call it under
+        ``np.errstate(all="ignore")``, as :func:`~winnow.tasks.sampling.sample` does once
+        for its whole run (entering it at every call costs as much as the rest of the
+        likelihood for a small model).
+        """
+        x, log_prior, log_jac = self.priors.transform(u)
+        lp = self._add_model(x, log_prior)
+        return lp + log_jac, lp, x
+
+    def _add_model(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""
         # A finite sum means every term is finite (one reduction instead of a mask and a
         # test; an overflowing sum only sends us down the exact path).
         all_inside = math.isfinite(out.sum())
@@ -266,15 +284,18 @@ def _gaussian(r: np.ndarray, s: np.ndarray) -> np.ndarray:
     return np.sum(-0.5 * z * z - np.log(s) - _LOG_SQRT_2PI, axis=-1)
 
 
-def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
-    """Gaussian log likelihood of residuals ``r`` (k, n_obs) for a known scale ``s``: the
-    normalising constant and ``1 / s`` are computed once, not at every evaluation."""
-    inv_s = 1.0 / s
+def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+    """Gaussian log likelihood of predictions ``pred`` (k, n_obs) of observations ``y`` for
+    a known scale ``s``: the normalising constant and ``1 / (2 s^2)`` are computed once,
+    not at every evaluation."""
+    half_prec = 0.5 / (s * s)
     const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
 
-    def loglik(r: np.ndarray) -> np.ndarray:
-        z = r * inv_s
-        return const - 0.5 * np.einsum("ij,ij->i", z, z)
+    def loglik(pred: np.ndarray, y: np.ndarray) -> np.ndarray:
+        r = pred - y
+        r *= r
+        ll = r @ half_prec  # sum of r^2 / (2 s^2) over the observations
+        return np.subtract(const, ll, out=ll)
 
     return loglik
 
@@ -326,24 +347,24 @@ def _make_caller(
             )
         return out.reshape(out_shape)
 
+    # loop() and batch() run under np.errstate(all="ignore"), set once by LogPosterior's
+    # caller (non-finite output is handled by LogPosterior).
     def loop(x: np.ndarray) -> np.ndarray:
         out = np.empty((len(x), *out_shape))
-        with np.errstate(all="ignore"):  # non-finite output is handled by the caller
-            for k, theta in enumerate(x):
-                # single() inlined for the common case: this runs once per model call.
-                try:
-                    val = np.asarray(func(theta, *args), dtype=np.float64)
-                except Exception:  # noqa: BLE001 - single() reports it with theta
-                    val = single(theta)
-                if val.shape != out_shape:
-                    val = single(theta)
-                out[k] = val
+        for k, theta in enumerate(x):
+            # single() inlined for the common case: this runs once per model call.
+            try:
+                val = np.asarray(func(theta, *args), dtype=np.float64)
+            except Exception:  # noqa: BLE001 - single() reports it with theta
+                val = single(theta)
+            if val.shape != out_shape:
+                val = single(theta)
+            out[k] = val
         return out
 
     def batch(x: np.ndarray) -> np.ndarray:
         try:
-            with np.errstate(all="ignore"):
-                out = np.asarray(func(x, *args), dtype=np.float64)
+            out = np.asarray(func(x, *args), dtype=np.float64)
         except Exception as exc:  # noqa: BLE001 - report any failure of user code
             raise ValueError(
                 f"vectorised model {label} failed on a batch of {len(x)} rows: "
@@ -361,14 +382,17 @@ def _make_caller(
         raise ValueError(f"vectorised must be 'auto', 'yes' or 'no', got {vectorised!r}")
     mode = choice[vectorised]
     if mode is True:
-        batch(probe)
+        with np.errstate(all="ignore"):
+            batch(probe)
         return batch, True
     if mode is False:
-        loop(probe)
+        with np.errstate(all="ignore"):
+            loop(probe)
         return loop, False
     # auto: a batch call must give the right shape and agree with single-row calls
     try:
-        singles: np.ndarray | None = loop(probe)
+        with np.errstate(all="ignore"):
+            singles: np.ndarray | None = loop(probe)
         single_error: Exception | None = None
     except ValueError as exc:
         singles, single_error = None, exc
@@ -480,17 +504,13 @@ def build_log_posterior(
         fixed_loglik = _gaussian_fixed(fixed_sigma)
 
         def evaluate_fixed(x: np.ndarray) -> np.ndarray:
-            pred = caller(x if identity else x[:, cols])
-            with np.errstate(all="ignore"):
-                return fixed_loglik(pred - y)
+            return fixed_loglik(caller(x if identity else x[:, cols]), y)
 
         return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec)
 
     def evaluate_forward(x: np.ndarray) -> np.ndarray:
-        pred = caller(x if identity else x[:, cols])
         s = fixed_sigma[None, :] if fixed_sigma is not None else x[:, [noise_col]]
-        with np.errstate(all="ignore"):
-            return loglik(pred - y, s)
+        return loglik(caller(x if identity else x[:, cols]) - y, s)
 
     return LogPosterior(ps, evaluate_forward, model=label, vectorised=vec)
 

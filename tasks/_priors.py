@@ -133,6 +133,7 @@ class PriorSet:
         self._log_const = float(
             -self.log_norm.sum() - (np.log(self.sigma[non_uniform]) + _LOG_SQRT_2PI).sum()
         )
+        self._build_fused()
 
     @property
     def d(self) -> int:
@@ -219,6 +220,95 @@ class PriorSet:
             out += logistic.sum(axis=1) + self._log_width_sum
         return out
 
+    def _build_fused(self) -> None:
+        """Precompute what :meth:`transform` needs: the columns of each kind of map and
+        density (basic slices where they are contiguous: views, not copies) and the weights
+        that sum the per-column terms into the log prior and the log-Jacobian."""
+        d = self.d
+        one = np.flatnonzero(self._lower_only | self._upper_only)
+        both, gauss, logn = self._idx_both, self._idx_gauss, self._idx_lognormal
+        self._f_one = _columns(one)
+        self._f_one_base = np.where(self._lower_only, self.low, self.high)[one]
+        self._f_one_sign = np.where(self._lower_only, 1.0, -1.0)[one]
+        self._f_both = _columns(both)
+        self._f_both_low, self._f_both_high = self.low[both], self.high[both]
+        self._f_both_width = self._width[both]
+        self._f_gauss = _columns(gauss)
+        self._f_gauss_mu, self._f_gauss_inv = self.mu[gauss], 1.0 / self.sigma[gauss]
+        self._f_logn = _columns(logn)
+        self._f_logn_mu, self._f_logn_inv = self.mu[logn], 1.0 / self.sigma[logn]
+        # Term matrix, one row per parameter row: [u | 2 log s(u_both) | z_gauss^2 |
+        # z_lognormal^2 | log x_lognormal]; its product with `weights` gives the two sums.
+        sizes = (d, both.size, gauss.size, logn.size, logn.size)
+        ends = np.cumsum(sizes)
+        starts = ends - np.asarray(sizes)
+        self._t_both, self._t_gauss, self._t_lnz, self._t_lnx = (
+            slice(int(a), int(b)) for a, b in zip(starts[1:], ends[1:], strict=True)
+        )
+        w = np.zeros((int(ends[-1]), 2))  # column 0: log prior, column 1: log-Jacobian
+        w[one, 1] = 1.0  # log|dx/du| = u on a one-sided support
+        w[both, 1] = -1.0  # log s(u) + log s(-u) = 2 log s(u) - u
+        w[self._t_both, 1] = 2.0
+        w[self._t_gauss, 0] = -0.5
+        w[self._t_lnz, 0] = -0.5
+        w[self._t_lnx, 0] = -1.0  # the 1/x of the log-normal density
+        self._t_weights = w
+        self._t_const = np.array([self._log_const, self._log_width_sum])
+
+    def transform(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`to_user`, :meth:`logpdf` of the result and :meth:`log_jacobian` in one pass.
+
+        The samplers' inner loop: each kind of map and density is applied once to its
+        columns and one matrix product sums the per-column terms. Rows where a term is not
+        finite (extreme ``u``, NaN) are recomputed by the three separate methods, so the
+        result is theirs up to rounding. Extreme rows may raise numpy's floating-point
+        warnings (the sampler calls this under ``np.errstate(all="ignore")``).
+
+        Parameters
+        ----------
+        u : ndarray, shape (k, d)
+            Rows in the unconstrained space (float64).
+
+        Returns
+        -------
+        x : ndarray, shape (k, d)
+            ``to_user(u)``.
+        log_prior : ndarray, shape (k,)
+            ``logpdf(x)``.
+        log_jac : ndarray, shape (k,)
+            ``log_jacobian(u)``.
+        """
+        t = np.empty((u.shape[0], self._t_weights.shape[0]))
+        t[:, : self.d] = u
+        x = u.copy()
+        one = self._f_one
+        if one is not None:
+            e = np.exp(np.minimum(u[:, one], 700.0))
+            x[:, one] = self._f_one_base + self._f_one_sign * e
+        both = self._f_both
+        if both is not None:
+            ub = u[:, both]
+            v = self._f_both_width * special.expit(ub)
+            v += self._f_both_low  # >= low: adding a number >= 0 rounds to no less
+            # Rounding may put the logistic image a hair above high; keep it on the support.
+            x[:, both] = np.minimum(v, self._f_both_high, out=v)
+            special.log_expit(ub, out=t[:, self._t_both])
+        g = self._f_gauss
+        if g is not None:
+            z = (x[:, g] - self._f_gauss_mu) * self._f_gauss_inv
+            np.multiply(z, z, out=t[:, self._t_gauss])
+        ln = self._f_logn
+        if ln is not None:
+            lx = np.log(x[:, ln], out=t[:, self._t_lnx])
+            z = (lx - self._f_logn_mu) * self._f_logn_inv
+            np.multiply(z, z, out=t[:, self._t_lnz])
+        if not math.isfinite(t.sum()):  # extreme u or NaN: the exact, separate path
+            x = self.to_user(u)
+            return x, self.logpdf(x), self.log_jacobian(u)
+        r = t @ self._t_weights
+        r += self._t_const
+        return x, r[:, 0], r[:, 1]
+
     # ---------------------------------------------------------------- draws
     def ppf(self, q: npt.ArrayLike) -> np.ndarray:
         """Quantiles of each marginal: ``q`` shape (k, d) in (0, 1) -> (k, d) user units."""
@@ -256,6 +346,16 @@ class PriorSet:
         u = self.to_unconstrained(x)
         s = 0.5 * np.abs(u[1] - u[0])
         return np.where(np.isfinite(s) & (s > 0), s, 1.0)
+
+
+def _columns(idx: np.ndarray) -> slice | np.ndarray | None:
+    """Columns ``idx`` as a basic slice when contiguous (indexing gives a view), else the
+    index array; None when empty."""
+    if idx.size == 0:
+        return None
+    if idx[-1] - idx[0] == idx.size - 1:
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
 
 
 def _log_ndtr_diff(b: float, a: float) -> float:

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -63,6 +64,14 @@ class StepContext:
         Acceptance probability of these chains' previous step (None on the first step).
     burn_in : int
         Iterations of the run that are burn-in.
+    group : int
+        Which group of chains (0, or 0 and 1 for the two halves of an ensemble).
+    block : int
+        At the first iteration the driver runs in a block of iterations, the block's
+        length: the move draws the random numbers of this group for the whole block at
+        once from the ``rng`` it is given (see :meth:`Move._ahead`); 0 elsewhere.
+    block_start : int
+        First iteration of the current block.
     """
 
     iteration: int
@@ -70,6 +79,9 @@ class StepContext:
     adapting: bool
     accept_prob: np.ndarray | None
     burn_in: int = 0
+    group: int = 0
+    block: int = 0
+    block_start: int = 0
 
 
 class Move(ABC):
@@ -97,6 +109,35 @@ class Move(ABC):
         self.n_chains = n_chains
         self.initial_scale = np.asarray(initial_scale, dtype=np.float64)
         self.state: dict[str, np.ndarray] = {}
+        # Random numbers drawn ahead, per group: (first iteration, length, arrays).
+        self._drawn: dict[int, tuple[int, int, tuple[np.ndarray, ...]]] = {}
+
+    def _ahead(
+        self,
+        ctx: StepContext,
+        rng: np.random.Generator,
+        draw: Callable[[np.random.Generator, int], tuple[np.ndarray, ...]],
+    ) -> tuple[np.ndarray, ...]:
+        """This iteration's random numbers, drawn a block of iterations at a time.
+
+        ``draw(rng, n)`` returns arrays whose first axis is the iteration (length ``n``).
+        Drawing a block at once replaces many small calls to the generator by one (a
+        per-call cost that dominates for a handful of chains); the numbers do not depend
+        on the chains' positions, so drawing them early changes nothing else. The driver
+        gives each block its own generator (a resumed run redraws the block it starts in);
+        a move must draw its random numbers here only. Outside a block (a move called on
+        its own) one iteration is drawn at a time.
+        """
+        t = ctx.iteration
+        got = self._drawn.get(ctx.group)
+        if ctx.block > 0:
+            got = (ctx.block_start, ctx.block, draw(rng, ctx.block))
+            self._drawn[ctx.group] = got
+        elif got is None or not got[0] <= t < got[0] + got[1]:
+            got = (t, 1, draw(rng, 1))
+            self._drawn[ctx.group] = got
+        j = t - got[0]
+        return tuple(a[j] for a in got[2])
 
     @abstractmethod
     def propose(
@@ -177,6 +218,7 @@ class AdaptiveMetropolis(Move):
         super().__init__(d, n_chains, initial_scale)
         self.t0 = max(100, 10 * d)
         self.s_d = 2.4**2 / d  # Haario et al. (2001), Eq. (2.1)
+        self._sqrt_s_d = math.sqrt(self.s_d)
         self.first_window = max(25, 5 * d)
         c0 = np.diag((0.1 * self.initial_scale) ** 2)
         self._floor = (1e-6 * self.initial_scale) ** 2
@@ -257,11 +299,14 @@ class AdaptiveMetropolis(Move):
             c = self._update(x, i)
             if c > self.t0 and (c == self.t0 + 1 or c % self.refresh == 0):
                 st["chol"] = _cholesky(self._empirical()[None])[0]
-        z = rng.standard_normal(x.shape)
-        scale = math.sqrt(self.s_d) * np.exp(
-            st["log_lambda"][i]
-        )  # lambda scales the step (std dev)
-        return x + (z @ st["chol"].T) * scale[:, None], np.zeros(len(x))
+        m, d = x.shape
+        (z,) = self._ahead(ctx, rng, lambda g, n: (g.standard_normal((n, m, d)),))
+        # lambda scales the step (std dev)
+        scale = self._sqrt_s_d * np.exp(st["log_lambda"][i])
+        step = z @ st["chol"].T
+        step *= scale[:, None]
+        step += x
+        return step, np.zeros(m)
 
     def _update(self, x: np.ndarray, i: slice | np.ndarray) -> int:
         """Welford update of the chains' means and the pooled scatter matrix (Haario et al.
@@ -308,12 +353,22 @@ class StretchMove(Move):
         rng: np.random.Generator,
         ctx: StepContext,
     ) -> tuple[np.ndarray, np.ndarray]:
-        m = len(x)
-        partner = others[rng.integers(len(others), size=m)]
+        m, r = len(x), len(others)
+        pick, z, log_q = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
+        partner = others[pick]
+        y = x - partner
+        y *= z[:, None]
+        y += partner  # Eq. (7)
+        return y, log_q
+
+    def _draw(
+        self, rng: np.random.Generator, n: int, m: int, r: int
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Partners, stretch factors and log proposal ratios of ``n`` iterations."""
+        pick = rng.integers(r, size=(n, m))
         # Inverse CDF of g(z) ~ z^-1/2 on [1/a, a]: z = ((a - 1) U + 1)^2 / a.
-        z = ((self.a - 1.0) * rng.random(m) + 1.0) ** 2 / self.a
-        y = partner + z[:, None] * (x - partner)  # Eq. (7)
-        return y, (self.d - 1.0) * np.log(z)  # Eq. (9)
+        z = ((self.a - 1.0) * rng.random((n, m)) + 1.0) ** 2 / self.a
+        return pick, z, (self.d - 1.0) * np.log(z)  # Eq. (9)
 
 
 class DifferentialEvolution(Move):
@@ -338,13 +393,28 @@ class DifferentialEvolution(Move):
         ctx: StepContext,
     ) -> tuple[np.ndarray, np.ndarray]:
         m, r = len(x), len(others)
-        r1 = rng.integers(r, size=m)
-        r2 = (r1 + rng.integers(1, r, size=m)) % r  # uniform over the others, != r1
-        gamma = np.where(rng.random(m) < self.p_mode_jump, 1.0, 2.38 / math.sqrt(2 * self.d))
-        spread = others.std(axis=0)
-        spread = np.where(spread > 0, spread, self.initial_scale)
-        e = self.jitter * spread * rng.standard_normal(x.shape)
-        return x + gamma[:, None] * (others[r1] - others[r2]) + e, np.zeros(m)
+        r1, r2, gamma, e = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
+        # the others' standard deviation per coordinate (numpy's std, without its overhead)
+        dev = others - np.add.reduce(others, axis=0) * (1.0 / r)
+        dev *= dev
+        spread = np.sqrt(np.add.reduce(dev, axis=0) * (1.0 / r))
+        if not spread.all():
+            spread = np.where(spread > 0, spread, self.initial_scale)
+        y = others[r1]
+        y -= others[r2]
+        y *= gamma[:, None]
+        y += x
+        y += (self.jitter * spread) * e
+        return y, np.zeros(m)
+
+    def _draw(
+        self, rng: np.random.Generator, n: int, m: int, r: int
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Pairs of others, step factors and unit jitters of ``n`` iterations."""
+        r1 = rng.integers(r, size=(n, m))
+        r2 = (r1 + rng.integers(1, r, size=(n, m))) % r  # uniform over the others, != r1
+        gamma = np.where(rng.random((n, m)) < self.p_mode_jump, 1.0, 2.38 / math.sqrt(2 * self.d))
+        return r1, r2, gamma, rng.standard_normal((n, m, self.d))
 
 
 MOVES: dict[str, type[Move]] = {

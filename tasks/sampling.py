@@ -25,13 +25,16 @@ Checkpoints
 -----------
 ``checkpoint(state)`` is called every ``checkpoint_every`` iterations with a dict of arrays,
 numbers and strings holding everything needed to go on: positions, log densities, the random
-generator's state (as JSON text), the move's adaptation state and the draws so far.
+generator's state (as JSON text) and the seed of the blocks of random numbers the moves and
+acceptance tests draw (``_BLOCK`` iterations at a time, each block from its own generator),
+the move's adaptation state and the draws so far.
 ``sample(..., resume=state)`` continues from such a dict and gives the same chain as a run
 that was never interrupted (same settings; the ``rng`` argument is then ignored).
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import time
 from collections.abc import Callable, Mapping, Sequence
@@ -63,9 +66,11 @@ __all__ = [
 
 SamplerName = Literal["adaptive_metropolis", "ensemble", "de_mcmc"]
 SAMPLERS: tuple[str, ...] = tuple(MOVES)
-STATE_FORMAT = "winnow.sample-state/2"  # /2: pooled adaptive Metropolis state
+# /2: pooled adaptive Metropolis state; /3: random numbers drawn in blocks (block_seed)
+STATE_FORMAT = "winnow.sample-state/3"
 _MAX_START_ROUNDS = 100  # prior draws per chain tried for a finite starting point
 _RESET_FRACTIONS = (0.2, 0.4, 0.6)  # points in the burn-in where stray chains are reset
+_BLOCK = 64  # iterations whose random numbers are drawn at once (see sample())
 
 
 def _validate_int(value: Any, name: str, minimum: int) -> int:
@@ -110,6 +115,16 @@ class _Target:
 
     def __call__(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Return (target at u, log posterior at x(u), x(u))."""
+        if self.clean:
+            with np.errstate(all="ignore"):
+                return self.f.at_unconstrained(u)  # type: ignore[attr-defined]
+        return self.plain(u)
+
+    def plain(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`__call__` without its np.errstate: for the sampler's inner loop, which
+        sets it once (a LogPosterior), or does not need it (a plain function)."""
+        if self.clean:  # the prior's map, density and Jacobian in one pass
+            return self.f.at_unconstrained(u)  # type: ignore[attr-defined]
         x = self.ps.to_user(u)
         lp = np.asarray(self.f(x), dtype=np.float64)
         if lp.shape != (len(u),):
@@ -337,14 +352,24 @@ def sample(
         gen = np.random.default_rng(rng)
         u, lpu, lpx = _starting_points(target, ps, n_chains, gen)
         start, filled = 0, 0
+        block_seed = int(gen.integers(2**63))
     else:
         gen, u, lpu, lpx, start, filled = _restore(
             resume, settings, move, kept, kept_lp, accepted, last_ap
         )
+        block_seed = int(_plain(resume["block_seed"]))
         evals0 += int(_plain(resume.get("n_evals", 0)))
         nonfinite0 += int(_plain(resume.get("n_nonfinite", 0)))
 
-    # Groups of chains updated together, as (index, slice, slice of the others): basic
+    # The chains' current state in one array, [u | x | log target | log posterior] per chain, so
+    # that accepting moves is one masked copy per step; u, x, lpu, lpx are views of it.
+    now = np.empty((n_chains, 2 * d + 2))
+    now[:, :d] = u
+    now[:, d : 2 * d] = ps.to_user(u)
+    now[:, 2 * d] = lpu
+    now[:, 2 * d + 1] = lpx
+    u, x, lpu, lpx = now[:, :d], now[:, d : 2 * d], now[:, 2 * d], now[:, 2 * d + 1]
+    # Groups of chains updated together, as (context, slice, slice of the others): basic
     # slices give views, which saves a copy of every array at every step.
     if move_cls.ensemble:
         h = n_chains // 2
@@ -352,61 +377,83 @@ def sample(
         groups = [(np.arange(h), first, second), (np.arange(h, n_chains), second, first)]
     else:
         groups = [(np.arange(n_chains), slice(None), slice(0, 0))]
-    x = ps.to_user(u)
+    steps = [
+        (
+            StepContext(start, g, True, None, burn_in=n_burn, group=k),
+            sl,
+            comp,
+            np.empty((len(g), 2 * d + 2)),  # the proposals' rows, laid out as `now`
+        )
+        for k, (g, sl, comp) in enumerate(groups)
+    ]
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
     what = f"sampling ({sampler})"
     report_every = max(1, n_draws // 100)
+    block_end = start
     t_start = time.perf_counter()
-    for t in range(start, n_draws):
-        adapting = t < n_burn
-        for g, sl, comp in groups:
-            ctx = StepContext(
-                iteration=t,
-                index=g,
-                adapting=adapting,
-                accept_prob=None if t == 0 else last_ap[sl],
-                burn_in=n_burn,
-            )
-            y, log_q = move.propose(u[sl], u[comp], gen, ctx)
-            lu_y, lx_y, x_y = target(y)
-            # lu_y is finite or -inf, lpu finite: log_alpha is never NaN.
-            log_alpha = lu_y - lpu[sl] + log_q
-            acc = np.log(gen.random(len(g))) < log_alpha
-            np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
-            # copyto with a mask: one call per array instead of a gather and a scatter
-            acc_rows = acc[:, None]
-            np.copyto(u[sl], y, where=acc_rows)
-            np.copyto(x[sl], x_y, where=acc_rows)
-            np.copyto(lpu[sl], lu_y, where=acc)
-            np.copyto(lpx[sl], lx_y, where=acc)
-            if not adapting:
-                accepted[sl] += acc
-        if t in reset_at:
-            _reset_strays(u, lpu, lpx, x, target, move.initial_scale, gen)
-        if t >= n_burn and (t - n_burn) % thin == 0:
-            kept[:, filled] = x
-            kept_lp[:, filled] = lpx
-            filled += 1
-        done = t + 1
-        if checkpoint is not None and done % checkpoint_every == 0 and done < n_draws:
-            state = dict(settings)
-            state.update(
-                iteration=done,
-                rng=_rng_to_text(gen),
-                u=u.copy(),
-                lp_u=lpu.copy(),
-                lp_x=lpx.copy(),
-                accept_prob=last_ap.copy(),
-                accepted=accepted.copy(),
-                draws=kept[:, :filled].copy(),
-                draws_log_density=kept_lp[:, :filled].copy(),
-                n_evals=evals0 + int(getattr(log_posterior, "n_evals", 0)),
-                n_nonfinite=nonfinite0 + int(getattr(log_posterior, "n_nonfinite", 0)),
-            )
-            state.update({f"move:{k}": v.copy() for k, v in move.state.items()})
-            checkpoint(state)
-        if progress is not None and (done % report_every == 0 or done == n_draws):
-            progress(done, n_draws, what)
+    # A LogPosterior runs the model with floating-point warnings off (non-finite output
+    # is handled by it, see _posterior); set once here instead of at every call.
+    quiet = np.errstate(all="ignore") if target.clean else contextlib.nullcontext()
+    with quiet:
+        for t in range(start, n_draws):
+            adapting = t < n_burn
+            block = 0
+            if t == block_end:
+                # The random numbers of the moves and of the acceptance tests are drawn for
+                # iterations [b * _BLOCK, (b + 1) * _BLOCK) at once, from a generator of their
+                # own seeded by (block_seed, b): the chain does not depend on where checkpoints
+                # fall, and a run resumed inside a block draws that block again.
+                block_start = t - t % _BLOCK
+                block_end = min(block_start + _BLOCK, n_draws)
+                block = block_end - block_start
+                block_rng = np.random.default_rng([block_seed, block_start // _BLOCK])
+                log_uniform = np.log(block_rng.random((block, n_chains)))
+            log_u = log_uniform[t - block_start]
+            for ctx, sl, comp, prop in steps:
+                ctx.iteration, ctx.adapting = t, adapting
+                ctx.block, ctx.block_start = block, block_start
+                ctx.accept_prob = None if t == 0 else last_ap[sl]
+                y, log_q = move.propose(u[sl], u[comp], block_rng, ctx)
+                lu_y, lx_y, x_y = target.plain(y)
+                # lu_y is finite or -inf, lpu finite: log_alpha is never NaN.
+                log_alpha = lu_y - lpu[sl]
+                log_alpha += log_q
+                acc = log_u[sl] < log_alpha
+                np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
+                prop[:, :d] = y
+                prop[:, d : 2 * d] = x_y
+                prop[:, 2 * d] = lu_y
+                prop[:, 2 * d + 1] = lx_y
+                np.copyto(now[sl], prop, where=acc[:, None])
+                if not adapting:
+                    accepted[sl] += acc
+            if t in reset_at:
+                _reset_strays(u, lpu, lpx, x, target, move.initial_scale, gen)
+            if t >= n_burn and (t - n_burn) % thin == 0:
+                kept[:, filled] = x
+                kept_lp[:, filled] = lpx
+                filled += 1
+            done = t + 1
+            if checkpoint is not None and done % checkpoint_every == 0 and done < n_draws:
+                state = dict(settings)
+                state.update(
+                    iteration=done,
+                    rng=_rng_to_text(gen),
+                    block_seed=block_seed,
+                    u=u.copy(),
+                    lp_u=lpu.copy(),
+                    lp_x=lpx.copy(),
+                    accept_prob=last_ap.copy(),
+                    accepted=accepted.copy(),
+                    draws=kept[:, :filled].copy(),
+                    draws_log_density=kept_lp[:, :filled].copy(),
+                    n_evals=evals0 + int(getattr(log_posterior, "n_evals", 0)),
+                    n_nonfinite=nonfinite0 + int(getattr(log_posterior, "n_nonfinite", 0)),
+                )
+                state.update({f"move:{k}": v.copy() for k, v in move.state.items()})
+                checkpoint(state)
+            if progress is not None and (done % report_every == 0 or done == n_draws):
+                progress(done, n_draws, what)
     seconds = time.perf_counter() - t_start
 
     acceptance = accepted / max(n_draws - n_burn, 1)
@@ -462,6 +509,8 @@ def _restore(
         raise ValueError(
             "resume: the checkpoint was made with other settings: " + "; ".join(differ)
         )
+    if "block_seed" not in state:
+        raise ValueError("resume: not a sample checkpoint (missing block_seed)")
     n, d = kept.shape[0], kept.shape[2]
     u = np.array(state["u"], dtype=np.float64)
     draws = np.asarray(state["draws"], dtype=np.float64)
