@@ -37,7 +37,9 @@ References
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import contextlib
+import functools
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Literal
 
@@ -172,6 +174,25 @@ def draw_feature_map(
     )
 
 
+@functools.cache
+def _blas_controller():
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
+
+
+@contextlib.contextmanager
+def one_blas_thread() -> Iterator[None]:
+    """Run the block with the BLAS library on one thread.
+
+    The feature product ``z @ W^T`` has an inner dimension of only ``d``; OpenBLAS splits
+    such a product across its threads at a large loss (measured 0.8 ns per entry on one
+    thread against 4 to 16 ns on two, ``benchmarks/bench_thin.py``) and fights the chunk
+    workers for the same cores. Parallelism comes from the chunk workers instead."""
+    with _blas_controller().limit(limits=1, user_api="blas"):
+        yield
+
+
 def _chunks(n: int, chunk: int):
     for start in range(0, n, chunk):
         yield start, min(n, start + chunk)
@@ -183,9 +204,10 @@ def features_of_rows(
     """Features of ``x[rows]`` (all rows when ``rows`` is None), shape (len(rows), 2 D)."""
     n = x.shape[0] if rows is None else rows.shape[0]
     out = np.empty((n, fmap.width), dtype=fmap.dtype)
-    for a, b in _chunks(n, chunk_size):
-        part = x[a:b] if rows is None else x[rows[a:b]]
-        fmap(part, out=out[a:b])
+    with one_blas_thread():
+        for a, b in _chunks(n, chunk_size):
+            part = x[a:b] if rows is None else x[rows[a:b]]
+            fmap(part, out=out[a:b])
     return out
 
 
@@ -233,22 +255,23 @@ def mean_embedding(
         return counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS
 
     acc = np.zeros(fmap.width, dtype=np.float64)
-    if workers == 1:
-        for k in range(len(spans)):
-            acc += chunk_sum(k, bufs[0])
-            if progress is not None:
-                progress(spans[k][1], n, "mean embedding")
-    else:
-        # numpy releases the GIL in matmul and cos/sin, so threads share the work; each round
-        # computes ``workers`` chunks and adds them in chunk order, so the float64 sum is
-        # bit-identical to the one-thread result
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            for r in range(0, len(spans), workers):
-                ks = range(r, min(r + workers, len(spans)))
-                for part in pool.map(chunk_sum, ks, bufs):
-                    acc += part
+    with one_blas_thread():
+        if workers == 1:
+            for k in range(len(spans)):
+                acc += chunk_sum(k, bufs[0])
                 if progress is not None:
-                    progress(spans[ks[-1]][1], n, "mean embedding")
+                    progress(spans[k][1], n, "mean embedding")
+        else:
+            # numpy releases the GIL in matmul and cos/sin, so threads share the work; each
+            # round computes ``workers`` chunks and adds them in chunk order, so the float64
+            # sum is bit-identical to the one-thread result
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(max_workers=workers) as pool:
+                for r in range(0, len(spans), workers):
+                    ks = range(r, min(r + workers, len(spans)))
+                    for part in pool.map(chunk_sum, ks, bufs):
+                        acc += part
+                    if progress is not None:
+                        progress(spans[ks[-1]][1], n, "mean embedding")
     return acc / (float(np.sum(counts)) * np.sqrt(fmap.n_features))
