@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from winnow.tasks import _priors
 from winnow.tasks._priors import as_prior_set
 from winnow.tasks.sampling import build_log_posterior
 
@@ -68,8 +69,15 @@ def _specs(order):
     return [{**SPECS[k][0], "name": f"p{j}"} for j, k in enumerate(order)]
 
 
+@pytest.fixture(params=["scalar", "numpy"])
+def path(request, monkeypatch):
+    """Run a test through the scalar path of small batches, or force the numpy path."""
+    monkeypatch.setattr(_priors, "_SMALL", 10**9 if request.param == "scalar" else 0)
+    return request.param
+
+
 @pytest.mark.parametrize("order", [ORDER, sorted(ORDER), [1], [0], [2, 2], [7, 3]])
-def test_transform_equals_the_per_parameter_path(order):
+def test_transform_equals_the_per_parameter_path(order, path):
     specs = _specs(order)
     ps = as_prior_set(specs)
     rng = np.random.default_rng(11)
@@ -82,7 +90,7 @@ def test_transform_equals_the_per_parameter_path(order):
 
 
 @pytest.mark.parametrize("k", range(len(SPECS)), ids=[s["name"] for s, _ in SPECS])
-def test_transform_log_prior_against_scipy(k):
+def test_transform_log_prior_against_scipy(k, path):
     spec, ref = SPECS[k]
     ps = as_prior_set([spec])
     u = np.linspace(-6.0, 6.0, 31)[:, None]
@@ -95,7 +103,7 @@ def test_transform_log_prior_against_scipy(k):
     np.testing.assert_allclose(lp, expect, rtol=1e-10, atol=1e-10)
 
 
-def test_transform_extreme_and_nonfinite_rows_follow_the_separate_path():
+def test_transform_extreme_and_nonfinite_rows_follow_the_separate_path(path):
     specs = _specs(ORDER)
     ps = as_prior_set(specs)
     d = len(specs)
@@ -111,6 +119,19 @@ def test_transform_extreme_and_nonfinite_rows_follow_the_separate_path():
         np.testing.assert_array_equal(lp, ps.logpdf(x0))
         np.testing.assert_array_equal(lj, ps.log_jacobian(u))
     assert lp[2] == -np.inf and lp[3] == -np.inf
+
+
+def test_small_batches_take_the_scalar_path_and_agree_with_numpy(monkeypatch):
+    ps = as_prior_set(_specs(ORDER))
+    u = np.random.default_rng(4).normal(scale=4.0, size=(4, len(ORDER)))
+    assert u.size <= _priors._SMALL  # the default path of a handful of chains
+    small = ps._transform_small(u)
+    assert small is not None
+    monkeypatch.setattr(_priors, "_SMALL", 0)
+    for a, b in zip(small, ps.transform(u), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-13, atol=1e-13)
+    u[1, 0] = -750.0  # logistic map: exp(-u) would overflow in Python floats
+    assert ps._transform_small(u) is None
 
 
 def test_at_unconstrained_equals_the_log_posterior_of_the_mapped_rows():
