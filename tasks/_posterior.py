@@ -294,7 +294,7 @@ def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndar
     def loglik(pred: np.ndarray, y: np.ndarray) -> np.ndarray:
         r = pred - y
         r *= r
-        ll = r @ half_prec  # sum of r^2 / (2 s^2) over the observations
+        ll = np.dot(r, half_prec)  # sum of r^2 / (2 s^2); np.dot: less overhead than @
         return np.subtract(const, ll, out=ll)
 
     return loglik
@@ -310,6 +310,23 @@ def _student_t(nu: float) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
         return np.sum(const - np.log(s) - 0.5 * (nu + 1) * np.log1p(z * z / nu), axis=-1)
 
     return loglik
+
+
+def _shares_buffer(vals: Sequence[Any]) -> bool:
+    """True when two of a model's results may be one mutable object or views of one
+    buffer (numpy scalars, floats and ints are immutable and never count)."""
+    seen = set()
+    for v in vals:
+        if isinstance(v, np.ndarray):
+            key = id(v) if v.base is None else id(v.base)
+        elif isinstance(v, (float, int, np.generic)):
+            continue
+        else:
+            key = id(v)
+        if key in seen:
+            return True
+        seen.add(key)
+    return False
 
 
 def _probe_rows(priors: PriorSet, cols: Sequence[int]) -> np.ndarray:
@@ -349,17 +366,46 @@ def _make_caller(
 
     # loop() and batch() run under np.errstate(all="ignore"), set once by LogPosterior's
     # caller (non-finite output is handled by LogPosterior).
-    def loop(x: np.ndarray) -> np.ndarray:
-        out = np.empty((len(x), *out_shape))
-        for k, theta in enumerate(x):
-            # single() inlined for the common case: this runs once per model call.
+    def copying_loop(rows: Sequence[np.ndarray], vals: Sequence[Any] | None) -> np.ndarray:
+        """Check and copy each result (``vals``, or the model's output as it comes)."""
+        out = np.empty((len(rows), *out_shape))
+        for k, theta in enumerate(rows):
             try:
-                val = np.asarray(func(theta, *args), dtype=np.float64)
+                val = np.asarray(func(theta, *args) if vals is None else vals[k], np.float64)
             except Exception:  # noqa: BLE001 - single() reports it with theta
                 val = single(theta)
             if val.shape != out_shape:
                 val = single(theta)
             out[k] = val
+        return out
+
+    shared = [False]  # once a model's results shared a buffer: copy them as they come
+
+    def loop(x: np.ndarray) -> np.ndarray:
+        rows = list(x)
+        if shared[0]:
+            return copying_loop(rows, None)
+        # Between two calls of a slow model numpy's code has left the CPU caches: do
+        # nothing per row but call the model, and check and convert all results at once.
+        vals: list[Any] = []
+        append = vals.append
+        while len(vals) < len(rows):
+            try:
+                for theta in rows[len(vals) :]:
+                    append(func(theta, *args))
+            except Exception:  # noqa: BLE001 - single() reports it with theta
+                append(single(rows[len(vals)]))
+        if _shares_buffer(vals):
+            # e.g. a model that returns one output array it overwrites at every call:
+            # the earlier results may be gone; evaluate again, copying each result.
+            shared[0] = True
+            return copying_loop(rows, None)
+        try:
+            out = np.array(vals, dtype=np.float64)
+        except (TypeError, ValueError):
+            out = None
+        if out is None or out.shape != (len(rows), *out_shape):
+            return copying_loop(rows, vals)  # reports a bad result with its theta
         return out
 
     def batch(x: np.ndarray) -> np.ndarray:

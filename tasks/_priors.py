@@ -328,7 +328,7 @@ class PriorSet:
         if not math.isfinite(t.sum()):  # extreme u or NaN: the exact, separate path
             x = self.to_user(u)
             return x, self.logpdf(x), self.log_jacobian(u)
-        r = t @ self._t_weights
+        r = np.dot(t, self._t_weights)
         r += self._t_const
         return x, r[:, 0], r[:, 1]
 
