@@ -111,8 +111,10 @@ class FeatureMap:
     mean, scale : ndarray, shape (d,)
         Standardisation: ``z = (x - mean) / scale``.
     dtype : numpy dtype
-        Precision of the feature values (float32 is ~10x faster for cos/sin and is the
-        default; sums over rows are always accumulated in float64).
+        Precision of the feature values. float32 is the default and uses the compiled
+        cos/sin kernels of ``_trig.py`` (about 5x faster than numpy's float32 ``cos`` and
+        ``sin``, absolute error below 2e-7); float64 uses numpy. Sums over rows are float32
+        within a chunk and float64 across chunks.
     """
 
     omega: np.ndarray
@@ -137,16 +139,27 @@ class FeatureMap:
         ``scaled=False`` leaves out the factor ``D^{-1/2}`` (the caller applies it once to a
         sum instead of to every entry)."""
         n_freq = self.n_features
-        z = (np.asarray(x, dtype=np.float64) - self.mean) / self.scale
+        x = np.asarray(x, dtype=np.float64)
         if out is None:
-            out = np.empty((z.shape[0], 2 * n_freq), dtype=self.dtype)
+            out = np.empty((x.shape[0], 2 * n_freq), dtype=self.dtype)
         head = out[:, :n_freq]
-        np.matmul(z.astype(self.dtype, copy=False), self._omega_t, out=head)  # one product
+        self._phases(x, out=head)
+        factor = self.dtype.type(1.0 / np.sqrt(n_freq)) if scaled else None
+        if out.dtype == np.float32 and out.flags.c_contiguous:
+            # compiled float32 cos and sin from one shared range reduction (_trig.py)
+            _trig = _trig_module()
+            _trig.cos_sin_features(out, n_freq, np.float32(1.0 if factor is None else factor))
+            return out
         np.sin(head, out=out[:, n_freq:])
         np.cos(head, out=head)  # in place
-        if scaled:
-            out *= self.dtype.type(1.0 / np.sqrt(n_freq))
+        if factor is not None:
+            out *= factor
         return out
+
+    def _phases(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """``theta = z W^T`` of rows ``x`` (float64, user units) into ``out``, shape (n, D)."""
+        z = (x - self.mean) / self.scale
+        return np.matmul(z.astype(self.dtype, copy=False), self._omega_t, out=out)  # one product
 
     def __post_init__(self) -> None:
         # W^T in the feature precision, laid out once for the matrix product
@@ -191,6 +204,13 @@ def one_blas_thread() -> Iterator[None]:
     workers for the same cores. Parallelism comes from the chunk workers instead."""
     with _blas_controller().limit(limits=1, user_api="blas"):
         yield
+
+
+def _trig_module():
+    """The compiled cos/sin kernels, imported on first use (numba takes ~0.5 s to import)."""
+    from . import _trig
+
+    return _trig
 
 
 def _chunks(n: int, chunk: int):
@@ -246,11 +266,26 @@ def mean_embedding(
     spans = list(_chunks(n, chunk_size))
     workers = max(1, min(int(workers), len(spans)))
     rows_per_buf = min(chunk_size, max(n, 1))
-    bufs = [np.empty((rows_per_buf, fmap.width), dtype=fmap.dtype) for _ in range(workers)]
+    n_freq = fmap.n_features
+    compiled = fmap.dtype == np.float32
+    if compiled:
+        # float32: the compiled kernel sums cos and sin of the phases straight into two
+        # float32 accumulators per chunk (rows in order, as the BLAS product did); only the
+        # phases theta (n, D) are ever stored, not the (n, 2 D) features
+        _trig = _trig_module()
+        weights = np.ascontiguousarray(counts, dtype=np.float32)
+        bufs = [np.empty((rows_per_buf, n_freq), dtype=np.float32) for _ in range(workers)]
+    else:
+        bufs = [np.empty((rows_per_buf, fmap.width), dtype=fmap.dtype) for _ in range(workers)]
 
     def chunk_sum(k: int, buf: np.ndarray) -> np.ndarray:
         a, b = spans[k]
         part = x[a:b] if rows is None else x[rows[a:b]]
+        if compiled:
+            theta = fmap._phases(np.asarray(part, dtype=np.float64), out=buf[: b - a])
+            sums = np.zeros(2 * n_freq, dtype=np.float32)
+            _trig.cos_sin_sums(theta, weights[a:b], sums[:n_freq], sums[n_freq:])
+            return sums
         phi = fmap(part, out=buf[: b - a], scaled=False)
         return counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS
 
@@ -262,9 +297,9 @@ def mean_embedding(
                 if progress is not None:
                     progress(spans[k][1], n, "mean embedding")
         else:
-            # numpy releases the GIL in matmul and cos/sin, so threads share the work; each
-            # round computes ``workers`` chunks and adds them in chunk order, so the float64
-            # sum is bit-identical to the one-thread result
+            # numpy's matmul and the compiled kernels (nogil) release the GIL, so threads
+            # share the work; each round computes ``workers`` chunks and adds them in chunk
+            # order, so the float64 sum is bit-identical to the one-thread result
             from concurrent.futures import ThreadPoolExecutor
 
             with ThreadPoolExecutor(max_workers=workers) as pool:
