@@ -186,9 +186,21 @@ class LogPosterior:
         for its whole run (entering it at every call costs as much as the rest of the
         likelihood for a small model).
         """
-        x, log_prior, log_jac = self.priors.transform(u)
-        lp = self._add_model(x, log_prior)
-        return lp + log_jac, lp, x
+        rows = self.rows_at_unconstrained(u)
+        d = self.d
+        return rows[:, 2 * d], rows[:, 2 * d + 1], rows[:, d : 2 * d]
+
+    def rows_at_unconstrained(self, u: np.ndarray) -> np.ndarray:
+        """:meth:`at_unconstrained` laid out as the samplers keep their chains: shape
+        (k, 2 d + 2), rows ``[u | x | log posterior + log-Jacobian | log posterior]``."""
+        rows = self.priors.transform_rows(u)
+        d = self.d
+        x = rows[:, d : 2 * d]
+        if self.vectorised:  # a batch model gets a contiguous array, as from the user
+            x = np.ascontiguousarray(x)
+        lp = self._add_model(x, rows[:, 2 * d + 1])  # in place: the log prior's column
+        rows[:, 2 * d] += lp  # the log-Jacobian's column
+        return rows
 
     def _add_model(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
         """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""

@@ -297,10 +297,28 @@ class PriorSet:
         log_jac : ndarray, shape (k,)
             ``log_jacobian(u)``.
         """
+        rows = self.transform_rows(u)
+        d = self.d
+        return rows[:, d : 2 * d], rows[:, 2 * d + 1], rows[:, 2 * d]
+
+    def transform_rows(self, u: np.ndarray) -> np.ndarray:
+        """:meth:`transform` laid out as the samplers keep their chains: one array of
+        shape (k, 2 d + 2) with rows ``[u | x | log_jac | log_prior]``."""
+        d = self.d
         if u.size <= _SMALL:
-            small = self._transform_small(u)
-            if small is not None:
-                return small
+            rows = self._rows_small(u)
+            if rows is not None:
+                return rows
+        x, log_prior, log_jac = self._fused(u)
+        rows = np.empty((len(u), 2 * d + 2))
+        rows[:, :d] = u
+        rows[:, d : 2 * d] = x
+        rows[:, 2 * d] = log_jac
+        rows[:, 2 * d + 1] = log_prior
+        return rows
+
+    def _fused(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The numpy path of :meth:`transform`."""
         t = np.empty((u.shape[0], self._t_weights.shape[0]))
         t[:, : self.d] = u
         x = u.copy()
@@ -332,8 +350,8 @@ class PriorSet:
         r += self._t_const
         return x, r[:, 0], r[:, 1]
 
-    def _transform_small(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
-        """:meth:`transform` of a few rows in Python floats (None: leave it to numpy).
+    def _rows_small(self, u: np.ndarray) -> np.ndarray | None:
+        """:meth:`transform_rows` of a few rows in Python floats (None: leave it to numpy).
 
         For a handful of values a numpy call costs far more than the arithmetic, and more
         again when a slow model has pushed numpy's code out of the CPU caches between
@@ -344,7 +362,8 @@ class PriorSet:
         exp, log1p, log = math.exp, math.log1p, math.log
         cols = self._s_cols
         c_prior, c_jac = self._log_const, self._log_width_sum
-        xs, lps, ljs = [], [], []
+        rows = []
+        total = 0.0
         for row in u.tolist():
             xr = []
             lp, lj = c_prior, c_jac
@@ -372,12 +391,14 @@ class PriorSet:
                     z = (lx - mu) * inv
                     lp -= 0.5 * z * z + lx
                 xr.append(xv)
-            xs.append(xr)
-            lps.append(lp)
-            ljs.append(lj)
-        if not math.isfinite(sum(lps) + sum(ljs)):
+            total += lp + lj
+            row += xr
+            row.append(lj)
+            row.append(lp)
+            rows.append(row)
+        if not math.isfinite(total):
             return None
-        return np.array(xs), np.array(lps), np.array(ljs)
+        return np.array(rows)
 
     # ---------------------------------------------------------------- draws
     def ppf(self, q: npt.ArrayLike) -> np.ndarray:

@@ -111,6 +111,15 @@ class Move(ABC):
         self.state: dict[str, np.ndarray] = {}
         # Random numbers drawn ahead, per group: (first iteration, length, arrays).
         self._drawn: dict[int, tuple[int, int, tuple[np.ndarray, ...]]] = {}
+        self._zeros: dict[int, np.ndarray] = {}
+
+    def _no_ratio(self, m: int) -> np.ndarray:
+        """A read-only zero log proposal ratio for ``m`` chains (a symmetric proposal)."""
+        z = self._zeros.get(m)
+        if z is None:
+            z = self._zeros[m] = np.zeros(m)
+            z.flags.writeable = False
+        return z
 
     def _ahead(
         self,
@@ -137,7 +146,7 @@ class Move(ABC):
             got = (t, 1, draw(rng, 1))
             self._drawn[ctx.group] = got
         j = t - got[0]
-        return tuple(a[j] for a in got[2])
+        return tuple([a[j] for a in got[2]])
 
     @abstractmethod
     def propose(
@@ -224,6 +233,7 @@ class AdaptiveMetropolis(Move):
         self._floor = (1e-6 * self.initial_scale) ** 2
         self._windows: tuple[int, set[int]] = (-1, set())
         self._last_end = 0
+        self._scale: np.ndarray | None = None
         self.state = {
             "count": np.zeros(1),
             "mean": np.zeros((n_chains, d)),
@@ -301,12 +311,13 @@ class AdaptiveMetropolis(Move):
                 st["chol"] = _cholesky(self._empirical()[None])[0]
         m, d = x.shape
         (z,) = self._ahead(ctx, rng, lambda g, n: (g.standard_normal((n, m, d)),))
-        # lambda scales the step (std dev)
-        scale = self._sqrt_s_d * np.exp(st["log_lambda"][i])
+        # lambda scales the step (std dev); fixed after the burn-in, so kept until then
+        if ctx.adapting or self._scale is None or len(self._scale) != m:
+            self._scale = (self._sqrt_s_d * np.exp(st["log_lambda"][i]))[:, None]
         step = np.dot(z, st["chol"].T)  # np.dot: less call overhead than @
-        step *= scale[:, None]
+        step *= self._scale
         step += x
-        return step, np.zeros(m)
+        return step, self._no_ratio(m)
 
     def _update(self, x: np.ndarray, i: slice | np.ndarray) -> int:
         """Welford update of the chains' means and the pooled scatter matrix (Haario et al.
@@ -314,10 +325,15 @@ class AdaptiveMetropolis(Move):
         st = self.state
         n = st["count"][0] + 1.0
         st["count"][0] = n
-        mean = st["mean"][i]
-        delta = x - mean
-        mean = mean + delta / n
-        st["mean"][i] = mean
+        if isinstance(i, slice):  # a view: update the means in place
+            mean = st["mean"][i]
+            delta = x - mean
+            mean += delta * (1.0 / n)
+        else:
+            mean = st["mean"][i]
+            delta = x - mean
+            mean += delta * (1.0 / n)
+            st["mean"][i] = mean
         st["m2"] += np.dot(delta.T, x - mean)
         return int(n)
 
@@ -404,8 +420,9 @@ class DifferentialEvolution(Move):
         y -= others[r2]
         y *= gamma[:, None]
         y += x
-        y += (self.jitter * spread) * e
-        return y, np.zeros(m)
+        spread *= self.jitter
+        y += spread * e
+        return y, self._no_ratio(m)
 
     def _draw(
         self, rng: np.random.Generator, n: int, m: int, r: int

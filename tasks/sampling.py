@@ -115,16 +115,17 @@ class _Target:
 
     def __call__(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Return (target at u, log posterior at x(u), x(u))."""
-        if self.clean:
-            with np.errstate(all="ignore"):
-                return self.f.at_unconstrained(u)  # type: ignore[attr-defined]
-        return self.plain(u)
+        with np.errstate(all="ignore") if self.clean else contextlib.nullcontext():
+            rows = self.rows(u)
+        d = self.ps.d
+        return rows[:, 2 * d], rows[:, 2 * d + 1], rows[:, d : 2 * d]
 
-    def plain(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """:meth:`__call__` without its np.errstate: for the sampler's inner loop, which
-        sets it once (a LogPosterior), or does not need it (a plain function)."""
+    def rows(self, u: np.ndarray) -> np.ndarray:
+        """Rows ``[u | x(u) | target | log posterior]``, shape (k, 2 d + 2), as the sampler
+        keeps its chains; without :meth:`__call__`'s np.errstate (the sampler's inner loop
+        sets it once for a LogPosterior; a plain function does not need it)."""
         if self.clean:  # the prior's map, density and Jacobian in one pass
-            return self.f.at_unconstrained(u)  # type: ignore[attr-defined]
+            return self.f.rows_at_unconstrained(u)  # type: ignore[attr-defined]
         x = self.ps.to_user(u)
         lp = np.asarray(self.f(x), dtype=np.float64)
         if lp.shape != (len(u),):
@@ -132,9 +133,14 @@ class _Target:
                 f"log posterior {self.label} returned shape {lp.shape} for {len(u)} rows; "
                 f"expected ({len(u)},)"
             )
-        if not self.clean:  # a LogPosterior already returns finite values or -inf
-            lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
-        return lp + self.ps.log_jacobian(u), lp, x
+        lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
+        d = self.ps.d
+        rows = np.empty((len(u), 2 * d + 2))
+        rows[:, :d] = u
+        rows[:, d : 2 * d] = x
+        rows[:, 2 * d] = lp + self.ps.log_jacobian(u)
+        rows[:, 2 * d + 1] = lp
+        return rows
 
 
 def _starting_points(
@@ -378,12 +384,7 @@ def sample(
     else:
         groups = [(np.arange(n_chains), slice(None), slice(0, 0))]
     steps = [
-        (
-            StepContext(start, g, True, None, burn_in=n_burn, group=k),
-            sl,
-            comp,
-            np.empty((len(g), 2 * d + 2)),  # the proposals' rows, laid out as `now`
-        )
+        (StepContext(start, g, True, None, burn_in=n_burn, group=k), sl, comp)
         for k, (g, sl, comp) in enumerate(groups)
     ]
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
@@ -409,21 +410,17 @@ def sample(
                 block_rng = np.random.default_rng([block_seed, block_start // _BLOCK])
                 log_uniform = np.log(block_rng.random((block, n_chains)))
             log_u = log_uniform[t - block_start]
-            for ctx, sl, comp, prop in steps:
+            for ctx, sl, comp in steps:
                 ctx.iteration, ctx.adapting = t, adapting
                 ctx.block, ctx.block_start = block, block_start
                 ctx.accept_prob = None if t == 0 else last_ap[sl]
                 y, log_q = move.propose(u[sl], u[comp], block_rng, ctx)
-                lu_y, lx_y, x_y = target.plain(y)
-                # lu_y is finite or -inf, lpu finite: log_alpha is never NaN.
-                log_alpha = lu_y - lpu[sl]
+                prop = target.rows(y)  # laid out as `now`
+                # the target is finite or -inf, lpu finite: log_alpha is never NaN.
+                log_alpha = prop[:, 2 * d] - lpu[sl]
                 log_alpha += log_q
                 acc = log_u[sl] < log_alpha
                 np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
-                prop[:, :d] = y
-                prop[:, d : 2 * d] = x_y
-                prop[:, 2 * d] = lu_y
-                prop[:, 2 * d + 1] = lx_y
                 np.copyto(now[sl], prop, where=acc[:, None])
                 if not adapting:
                     accepted[sl] += acc

@@ -125,13 +125,18 @@ def test_small_batches_take_the_scalar_path_and_agree_with_numpy(monkeypatch):
     ps = as_prior_set(_specs(ORDER))
     u = np.random.default_rng(4).normal(scale=4.0, size=(4, len(ORDER)))
     assert u.size <= _priors._SMALL  # the default path of a handful of chains
-    small = ps._transform_small(u)
+    small = ps._rows_small(u)
     assert small is not None
     monkeypatch.setattr(_priors, "_SMALL", 0)
-    for a, b in zip(small, ps.transform(u), strict=True):
-        np.testing.assert_allclose(a, b, rtol=1e-13, atol=1e-13)
+    np.testing.assert_allclose(small, ps.transform_rows(u), rtol=1e-13, atol=1e-13)
+    d = len(ORDER)
+    x, lp, lj = ps.transform(u)
+    np.testing.assert_array_equal(small[:, :d], u)
+    np.testing.assert_allclose(small[:, d : 2 * d], x, rtol=1e-13)
+    np.testing.assert_allclose(small[:, 2 * d], lj, rtol=1e-13)
+    np.testing.assert_allclose(small[:, 2 * d + 1], lp, rtol=1e-13)
     u[1, 0] = -750.0  # logistic map: exp(-u) would overflow in Python floats
-    assert ps._transform_small(u) is None
+    assert ps._rows_small(u) is None
 
 
 def test_at_unconstrained_equals_the_log_posterior_of_the_mapped_rows():
