@@ -400,6 +400,7 @@ class DifferentialEvolution(Move):
     ensemble = True
     p_mode_jump = 0.1
     jitter = 1e-4
+    max_pair_matrix = 1024  # up to m * r walker pairs, the pairs as one matrix product
 
     def propose(
         self,
@@ -409,29 +410,51 @@ class DifferentialEvolution(Move):
         ctx: StepContext,
     ) -> tuple[np.ndarray, np.ndarray]:
         m, r = len(x), len(others)
-        r1, r2, gamma, e = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
-        # the others' standard deviation per coordinate (numpy's std, without its overhead)
-        dev = others - np.add.reduce(others, axis=0) * (1.0 / r)
+        *pairs, e = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
+        # The others' standard deviation per coordinate; np.dot for the means costs a
+        # fraction of numpy's std on a few walkers.
+        w = self._mean_weights.get(r)
+        if w is None:
+            w = self._mean_weights[r] = np.full(r, 1.0 / r)
+        dev = others - np.dot(w, others)
         dev *= dev
-        spread = np.sqrt(np.add.reduce(dev, axis=0) * (1.0 / r))
+        spread = np.sqrt(np.dot(w, dev))
         if not spread.all():
             spread = np.where(spread > 0, spread, self.initial_scale)
-        y = others[r1]
-        y -= others[r2]
-        y *= gamma[:, None]
+        if len(pairs) == 1:  # gamma (x_r1 - x_r2) as one product with the others
+            y = np.dot(pairs[0], others)
+        else:
+            r1, r2, gamma = pairs
+            y = others[r1]
+            y -= others[r2]
+            y *= gamma[:, None]
         y += x
         spread *= self.jitter
         y += spread * e
         return y, self._no_ratio(m)
 
-    def _draw(
-        self, rng: np.random.Generator, n: int, m: int, r: int
-    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """Pairs of others, step factors and unit jitters of ``n`` iterations."""
+    def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
+        super().__init__(d, n_chains, initial_scale)
+        self._mean_weights: dict[int, np.ndarray] = {}
+
+    def _draw(self, rng: np.random.Generator, n: int, m: int, r: int) -> tuple[np.ndarray, ...]:
+        """Pairs of others with their step factors, and unit jitters, of ``n`` iterations.
+
+        The pairs come as ``(r1, r2, gamma)``, or for up to ``max_pair_matrix`` walker
+        pairs as one matrix per iteration, shape (m, r), holding ``gamma`` at ``r1`` and ``-gamma`` at
+        ``r2`` in each row.
+        """
         r1 = rng.integers(r, size=(n, m))
         r2 = (r1 + rng.integers(1, r, size=(n, m))) % r  # uniform over the others, != r1
         gamma = np.where(rng.random((n, m)) < self.p_mode_jump, 1.0, 2.38 / math.sqrt(2 * self.d))
-        return r1, r2, gamma, rng.standard_normal((n, m, self.d))
+        e = rng.standard_normal((n, m, self.d))
+        if m * r > self.max_pair_matrix:
+            return r1, r2, gamma, e
+        pick = np.zeros((n, m, r))
+        step, row = np.ogrid[:n, :m]
+        pick[step, row, r1] = gamma
+        pick[step, row, r2] = -gamma
+        return pick, e
 
 
 MOVES: dict[str, type[Move]] = {

@@ -243,3 +243,31 @@ def test_scalar_log_density_of_floats_and_one_element_arrays():
         lp = build_log_posterior(PRIORS_LOOP, log_density=make(wrap), vectorised="no")
         ref = stats.norm(1.0, 0.5).logpdf(ROWS[:, 0]) + stats.norm(0, 1).logpdf(ROWS[:, 1])
         np.testing.assert_allclose(lp(ROWS), ref, rtol=1e-12)
+
+
+# ------------------------------------------------------------------ moves drawing ahead
+@pytest.mark.parametrize("max_pairs", [1024, 0], ids=["pair-matrix", "gather"])
+def test_de_proposal_against_its_formula(max_pairs, monkeypatch):
+    # ter Braak (2006): y = x + gamma (x_r1 - x_r2) + e, e ~ N(0, (1e-4 sd of the others)^2)
+    # per coordinate; the oracle redraws the same numbers and uses numpy's std.
+    from winnow.tasks._samplers import DifferentialEvolution, StepContext
+
+    monkeypatch.setattr(DifferentialEvolution, "max_pair_matrix", max_pairs)
+    d, m, r, n = 3, 4, 5, 6
+    move = DifferentialEvolution(d, m + r, np.ones(d))
+    x = np.random.default_rng(1).normal(size=(m, d))
+    others = np.random.default_rng(2).normal(size=(r, d)) * [1.0, 10.0, 0.1]
+    got = []
+    for t in range(n):
+        ctx = StepContext(t, np.arange(m), True, None, block=n if t == 0 else 0, block_start=0)
+        got.append(move.propose(x, others, np.random.default_rng(7), ctx)[0])
+    g = np.random.default_rng(7)  # the same calls, in the same order, as DE's _draw
+    r1 = g.integers(r, size=(n, m))
+    r2 = (r1 + g.integers(1, r, size=(n, m))) % r
+    gamma = np.where(g.random((n, m)) < 0.1, 1.0, 2.38 / np.sqrt(2 * d))
+    e = g.standard_normal((n, m, d))
+    for t in range(n):
+        expect = x + gamma[t][:, None] * (others[r1[t]] - others[r2[t]])
+        expect += 1e-4 * others.std(axis=0) * e[t]
+        np.testing.assert_allclose(got[t], expect, rtol=1e-12, atol=1e-14)
+    assert not np.allclose(got[0], got[1])  # each iteration its own draws
