@@ -206,6 +206,11 @@ def one_blas_thread() -> Iterator[None]:
         yield
 
 
+# rows of phases computed per product in the float32 mean-embedding pass: 32 rows of 4096
+# float32 phases are 512 kB, one core's L2 cache (benchmarks/bench_trig.py)
+_PHASE_ROWS = 32
+
+
 def _trig_module():
     """The compiled cos/sin kernels, imported on first use (numba takes ~0.5 s to import)."""
     from . import _trig
@@ -253,7 +258,9 @@ def mean_embedding(
     counts : ndarray, shape (k,)
         Multiplicity of each embedded row.
     chunk_size : int
-        Rows per chunk: memory is ``workers * chunk_size * 2 D`` feature values at a time.
+        Rows per chunk: memory is at most ``workers * chunk_size * 2 D`` feature values at
+        a time (float32 maps store only ``workers * 32 * D`` phases). Each chunk's sum is
+        formed in the feature precision and added to a float64 total in chunk order.
     workers : int
         Threads computing chunks (the result is bit-identical for any number).
 
@@ -274,7 +281,8 @@ def mean_embedding(
         # phases theta (n, D) are ever stored, not the (n, 2 D) features
         _trig = _trig_module()
         weights = np.ascontiguousarray(counts, dtype=np.float32)
-        bufs = [np.empty((rows_per_buf, n_freq), dtype=np.float32) for _ in range(workers)]
+        block = min(_PHASE_ROWS, rows_per_buf)
+        bufs = [np.empty((block, n_freq), dtype=np.float32) for _ in range(workers)]
     else:
         bufs = [np.empty((rows_per_buf, fmap.width), dtype=fmap.dtype) for _ in range(workers)]
 
@@ -282,9 +290,14 @@ def mean_embedding(
         a, b = spans[k]
         part = x[a:b] if rows is None else x[rows[a:b]]
         if compiled:
-            theta = fmap._phases(np.asarray(part, dtype=np.float64), out=buf[: b - a])
+            part = np.asarray(part, dtype=np.float64)
             sums = np.zeros(2 * n_freq, dtype=np.float32)
-            _trig.cos_sin_sums(theta, weights[a:b], sums[:n_freq], sums[n_freq:])
+            # the phases of a few rows at a time stay in the core's L2 cache between the
+            # product that writes them and the kernel that reads them
+            for s0 in range(0, b - a, buf.shape[0]):
+                s1 = min(b - a, s0 + buf.shape[0])
+                theta = fmap._phases(part[s0:s1], out=buf[: s1 - s0])
+                _trig.cos_sin_sums(theta, weights[a + s0 : a + s1], sums[:n_freq], sums[n_freq:])
             return sums
         phi = fmap(part, out=buf[: b - a], scaled=False)
         return counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS
