@@ -18,9 +18,10 @@ step a fused multiply-add (one rounding, exact product), then minimax polynomial
 ``sin r`` and ``cos r`` on ``|r| <= pi/4`` (the coefficients of the Cephes single-precision
 ``sinf``/``cosf``, Moshier 1989) and the quadrant ``k mod 4`` selecting and signing them.
 
-Why it is accurate: for ``|x| >= 1`` both ``x`` and ``k P1`` are multiples of ``2^-23``
-(``P1`` is ``pi/2`` rounded to float32, in [1, 2)), so ``x - k P1`` (below 2 in magnitude)
-is exact; the later two steps and the polynomials add a few units of ``2^-24`` in absolute
+Why it is accurate: whenever ``k != 0`` (``|x| > pi/4``) both ``x`` and ``k P1`` are
+multiples of ``2^-24`` (``P1`` is ``pi/2`` rounded to float32, in [1, 2)) and
+``|x - k P1| <= pi/4 + |k| |pi/2 - P1| < 0.9`` for ``|x| <= 2^20``, so the first step is
+exact; the later two steps and the polynomials add a few units of ``2^-24`` in absolute
 error. Measured against float64 ``numpy.cos``/``numpy.sin`` of the same float32 argument
 (``tests/test_thin_trig.py``): at most 3 units of ``2^-24`` (1.8e-7) absolute error for
 ``|x| <= REDUCTION_LIMIT``.
@@ -105,7 +106,7 @@ def _cos_sin(x):  # pragma: no cover - compiled
     """(cos x, sin x) for ``|x| <= REDUCTION_LIMIT``, float32."""
     k = np.floor(x * _TWO_OVER_PI + _HALF)  # nearest multiple of pi/2
     nk = -k
-    r = _fma(nk, _P1, x)  # exact for |x| >= 1 (see module notes)
+    r = _fma(nk, _P1, x)  # exact (see module notes)
     r = _fma(nk, _P2, r)
     r = _fma(nk, _P3, r)
     r2 = r * r
@@ -173,7 +174,8 @@ def cos_sin_features(out, n_freq, factor):  # pragma: no cover - compiled
         ``factor * cos(theta)`` and the last ``n_freq`` columns ``factor * sin(theta)``.
     n_freq : int
     factor : float32
-        Scale applied to every value (1 for none; multiplying by 1 is exact).
+        Scale in (0, 1] applied to every value (1 for none; multiplying by 1 is exact).
+        At most 1 so that a finished value can never be mistaken for a pending argument.
 
     Returns
     -------
