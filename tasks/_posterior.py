@@ -206,12 +206,12 @@ class LogPosterior:
         """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""
         # A finite sum means every term is finite (one reduction instead of a mask and a
         # test; an overflowing sum only sends us down the exact path).
-        all_inside = math.isfinite(out.sum())
+        all_inside = math.isfinite(np.add.reduce(out))
         inside = None if all_inside else np.flatnonzero(np.isfinite(out))
         if all_inside or inside.size:  # type: ignore[union-attr]
             ll = self._evaluate(x if all_inside else x[inside])
             self.n_evals += len(ll)
-            if not math.isfinite(ll.sum()):  # outside the model's domain: see module notes
+            if not math.isfinite(np.add.reduce(ll)):  # outside the model's domain: see notes
                 nonfinite = ~np.isfinite(ll)
                 self.n_nonfinite += int(np.count_nonzero(nonfinite))
                 ll = np.where(nonfinite, -np.inf, ll)
@@ -304,7 +304,7 @@ def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndar
     const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
 
     def loglik(pred: np.ndarray, y: np.ndarray) -> np.ndarray:
-        r = pred - y
+        r = pred - y  # not in place: a vectorised model's output may be its own array
         r *= r
         ll = np.dot(r, half_prec)  # sum of r^2 / (2 s^2); np.dot: less overhead than @
         return np.subtract(const, ll, out=ll)
@@ -326,19 +326,12 @@ def _student_t(nu: float) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
 
 def _shares_buffer(vals: Sequence[Any]) -> bool:
     """True when two of a model's results may be one mutable object or views of one
-    buffer (numpy scalars, floats and ints are immutable and never count)."""
-    seen = set()
-    for v in vals:
-        if isinstance(v, np.ndarray):
-            key = id(v) if v.base is None else id(v.base)
-        elif isinstance(v, (float, int, np.generic)):
-            continue
-        else:
-            key = id(v)
-        if key in seen:
-            return True
-        seen.add(key)
-    return False
+    buffer."""
+    # One set of ids: an array counts by the buffer it views (its base), anything else by
+    # itself. A float constant returned for several rows also counts: harmless, the
+    # results are then only copied as they come.
+    owners = {id(v if (b := getattr(v, "base", None)) is None else b) for v in vals}
+    return len(owners) < len(vals)
 
 
 def _probe_rows(priors: PriorSet, cols: Sequence[int]) -> np.ndarray:

@@ -61,7 +61,8 @@ class StepContext:
         True during burn-in; adaptation that would break the Markov property of the kept
         draws must only happen then.
     accept_prob : ndarray, shape (m,), or None
-        Acceptance probability of these chains' previous step (None on the first step).
+        Acceptance probability of these chains' previous step (None on the first step,
+        and for a move whose ``uses_accept_prob`` is False).
     burn_in : int
         Iterations of the run that are burn-in.
     group : int
@@ -103,6 +104,8 @@ class Move(ABC):
     name: ClassVar[str] = ""
     #: True for moves that update the chains in two halves using the other half.
     ensemble: ClassVar[bool] = False
+    #: False for moves that never read ``ctx.accept_prob`` (the driver then skips it).
+    uses_accept_prob: ClassVar[bool] = True
 
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
         self.d = d
@@ -360,6 +363,7 @@ class StretchMove(Move):
 
     name = "ensemble"
     ensemble = True
+    uses_accept_prob = False
     a = 2.0  # stretch scale, the value used by Goodman & Weare (2010)
 
     def propose(
@@ -398,6 +402,7 @@ class DifferentialEvolution(Move):
 
     name = "de_mcmc"
     ensemble = True
+    uses_accept_prob = False
     p_mode_jump = 0.1
     jitter = 1e-4
     max_pair_matrix = 1024  # up to m * r walker pairs, the pairs as one matrix product

@@ -383,10 +383,22 @@ def sample(
         groups = [(np.arange(h), first, second), (np.arange(h, n_chains), second, first)]
     else:
         groups = [(np.arange(n_chains), slice(None), slice(0, 0))]
+    # Per group: its context and views of its rows in every array (made once here).
+    uses_ap = move.uses_accept_prob
     steps = [
-        (StepContext(start, g, True, None, burn_in=n_burn, group=k), sl, comp)
+        (
+            StepContext(start, g, True, None, burn_in=n_burn, group=k),
+            sl,
+            u[sl],
+            u[comp],
+            lpu[sl],
+            last_ap[sl],
+            now[sl],
+            accepted[sl],
+        )
         for k, (g, sl, comp) in enumerate(groups)
     ]
+    col_target = 2 * d
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
     what = f"sampling ({sampler})"
     report_every = max(1, n_draws // 100)
@@ -409,21 +421,22 @@ def sample(
                 block = block_end - block_start
                 block_rng = np.random.default_rng([block_seed, block_start // _BLOCK])
                 log_uniform = np.log(block_rng.random((block, n_chains)))
-            log_u = log_uniform[t - block_start]
-            for ctx, sl, comp in steps:
+            j = t - block_start
+            for ctx, sl, u_g, u_others, lpu_g, ap_g, now_g, accepted_g in steps:
                 ctx.iteration, ctx.adapting = t, adapting
                 ctx.block, ctx.block_start = block, block_start
-                ctx.accept_prob = None if t == 0 else last_ap[sl]
-                y, log_q = move.propose(u[sl], u[comp], block_rng, ctx)
+                ctx.accept_prob = None if t == 0 or not uses_ap else ap_g
+                y, log_q = move.propose(u_g, u_others, block_rng, ctx)
                 prop = target.rows(y)  # laid out as `now`
                 # the target is finite or -inf, lpu finite: log_alpha is never NaN.
-                log_alpha = prop[:, 2 * d] - lpu[sl]
+                log_alpha = prop[:, col_target] - lpu_g
                 log_alpha += log_q
-                acc = log_u[sl] < log_alpha
-                np.exp(np.minimum(log_alpha, 0.0), out=last_ap[sl])
-                np.copyto(now[sl], prop, where=acc[:, None])
+                acc = log_uniform[j, sl] < log_alpha
+                if uses_ap:
+                    np.exp(np.minimum(log_alpha, 0.0), out=ap_g)
+                np.copyto(now_g, prop, where=acc[:, None])
                 if not adapting:
-                    accepted[sl] += acc
+                    accepted_g += acc
             if t in reset_at:
                 _reset_strays(u, lpu, lpx, x, target, move.initial_scale, gen)
             if t >= n_burn and (t - n_burn) % thin == 0:
