@@ -114,7 +114,7 @@ class FeatureMap:
         Precision of the feature values. float32 is the default and uses the compiled
         cos/sin kernels of ``_trig.py`` (about 5x faster than numpy's float32 ``cos`` and
         ``sin``, absolute error below 2e-7); float64 uses numpy. Sums over rows are float32
-        within a chunk and float64 across chunks.
+        over at most 32 rows and float64 beyond (see :func:`mean_embedding`).
     """
 
     omega: np.ndarray
@@ -259,8 +259,9 @@ def mean_embedding(
         Multiplicity of each embedded row.
     chunk_size : int
         Rows per chunk: memory is at most ``workers * chunk_size * 2 D`` feature values at
-        a time (float32 maps store only ``workers * 32 * D`` phases). Each chunk's sum is
-        formed in the feature precision and added to a float64 total in chunk order.
+        a time (float32 maps store only ``workers * 32 * D`` phases). float32 maps sum 32
+        rows at a time in float32 and add those sums in float64; float64 maps sum each chunk
+        in float64. Chunk sums are added to a float64 total in chunk order.
     workers : int
         Threads computing chunks (the result is bit-identical for any number).
 
@@ -276,9 +277,9 @@ def mean_embedding(
     n_freq = fmap.n_features
     compiled = fmap.dtype == np.float32
     if compiled:
-        # float32: the compiled kernel sums cos and sin of the phases straight into two
-        # float32 accumulators per chunk (rows in order, as the BLAS product did); only the
-        # phases theta (n, D) are ever stored, not the (n, 2 D) features
+        # float32: the compiled kernel sums cos and sin of the phases straight into float32
+        # accumulators, 32 rows at a time, added to a float64 chunk total; only the phases
+        # theta (32, D) are ever stored, not the (n, 2 D) features
         _trig = _trig_module()
         weights = np.ascontiguousarray(counts, dtype=np.float32)
         block = min(_PHASE_ROWS, rows_per_buf)
@@ -291,14 +292,18 @@ def mean_embedding(
         part = x[a:b] if rows is None else x[rows[a:b]]
         if compiled:
             part = np.asarray(part, dtype=np.float64)
-            sums = np.zeros(2 * n_freq, dtype=np.float32)
+            total = np.zeros(2 * n_freq, dtype=np.float64)
+            sums = np.empty(2 * n_freq, dtype=np.float32)
             # the phases of a few rows at a time stay in the core's L2 cache between the
-            # product that writes them and the kernel that reads them
+            # product that writes them and the kernel that reads them; each block's float32
+            # sum goes into a float64 total at once (a short float32 sum, a cheap float64 add)
             for s0 in range(0, b - a, buf.shape[0]):
                 s1 = min(b - a, s0 + buf.shape[0])
                 theta = fmap._phases(part[s0:s1], out=buf[: s1 - s0])
+                sums[:] = 0.0
                 _trig.cos_sin_sums(theta, weights[a + s0 : a + s1], sums[:n_freq], sums[n_freq:])
-            return sums
+                total += sums
+            return total
         phi = fmap(part, out=buf[: b - a], scaled=False)
         return counts[a:b].astype(fmap.dtype) @ phi  # one chunk summed by BLAS
 

@@ -188,7 +188,7 @@ def test_mean_embedding_matches_oracle_and_is_bit_identical_across_workers(kerne
         np.testing.assert_array_equal(other, runs[0])  # bit-identical, any worker count
     theta, err = _phases(fmap, x)
     want = counts @ np.hstack([np.cos(theta), np.sin(theta)]) / counts.sum() / np.sqrt(n_freq)
-    # weighted mean: float32 accumulation over chunks of 128 rows (module docstring bound,
+    # weighted mean: float32 sums over at most one chunk of 128 rows (module docstring bound,
     # relative to the chunk's weight) + 3 U per value + the product's rounding, all divided
     # by the normalisation sqrt(D)
     per_value = 3 * U + np.tile(counts @ err / counts.sum(), 2)
