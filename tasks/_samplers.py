@@ -236,7 +236,8 @@ class AdaptiveMetropolis(Move):
         self._floor = (1e-6 * self.initial_scale) ** 2
         self._windows: tuple[int, set[int]] = (-1, set())
         self._last_end = 0
-        self._scale: np.ndarray | None = None
+        # (Cholesky factor, log lambda, the scaled factor) of the last step
+        self._factor: tuple[np.ndarray | None, float, np.ndarray | None] = (None, 0.0, None)
         self.state = {
             "count": np.zeros(1),
             "mean": np.zeros((n_chains, d)),
@@ -281,8 +282,8 @@ class AdaptiveMetropolis(Move):
                 gamma = steps**-0.6
                 # One lambda for all chains, from their mean acceptance: a chain that sits in
                 # a tail while lambda is tuned would otherwise keep a step size fit only there.
-                ap = ctx.accept_prob
-                mean_accept = float(np.add.reduce(ap)) / len(ap)
+                ap = ctx.accept_prob.tolist()  # a few numbers: Python is quicker
+                mean_accept = sum(ap) / len(ap)
                 st["log_lambda"][i] += gamma * (mean_accept - self.target_acceptance)
                 st["steps"][0] = steps
             ends = self.window_ends(ctx.burn_in)
@@ -314,11 +315,16 @@ class AdaptiveMetropolis(Move):
                 st["chol"] = _cholesky(self._empirical()[None])[0]
         m, d = x.shape
         (z,) = self._ahead(ctx, rng, lambda g, n: (g.standard_normal((n, m, d)),))
-        # lambda scales the step (std dev); fixed after the burn-in, so kept until then
-        if ctx.adapting or self._scale is None or len(self._scale) != m:
-            self._scale = (self._sqrt_s_d * np.exp(st["log_lambda"][i]))[:, None]
-        step = np.dot(z, st["chol"].T)  # np.dot: less call overhead than @
-        step *= self._scale
+        # The step is z (sqrt(s_d) lambda L)' for each chain (lambda scales the std dev).
+        chol, lam = st["chol"], st["log_lambda"][i].tolist()
+        if lam.count(lam[0]) == len(lam):  # one lambda for all chains: the usual case
+            if chol is not self._factor[0] or lam[0] != self._factor[1]:
+                scaled = chol.T * (self._sqrt_s_d * math.exp(lam[0]))
+                self._factor = (chol, lam[0], scaled)
+            step = np.dot(z, self._factor[2])  # np.dot: less call overhead than @
+        else:
+            step = np.dot(z, chol.T)
+            step *= self._sqrt_s_d * np.exp(np.array(lam))[:, None]
         step += x
         return step, self._no_ratio(m)
 
@@ -326,8 +332,9 @@ class AdaptiveMetropolis(Move):
         """Welford update of the chains' means and the pooled scatter matrix (Haario et al.
         2001, Eq. (3), summed over chains); returns the draws per chain so far."""
         st = self.state
-        n = st["count"][0] + 1.0
-        st["count"][0] = n
+        count = st["count"]
+        n = count.item() + 1.0
+        count[0] = n
         if isinstance(i, slice):  # a view: update the means in place
             mean = st["mean"][i]
             delta = x - mean
