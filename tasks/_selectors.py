@@ -120,14 +120,17 @@ class Problem:
     def n_pool(self) -> int:
         return int(self.phi.shape[0])
 
-    def weigh(self, phi_s: np.ndarray) -> tuple[np.ndarray, float]:
-        """Weights by the problem's rule and the feature-space MMD, for features ``phi_s``."""
+    def weigh(
+        self, phi_s: np.ndarray, gram: np.ndarray | None = None
+    ) -> tuple[np.ndarray, float]:
+        """Weights by the problem's rule and the feature-space MMD, for features ``phi_s``
+        (``gram``: their Gram matrix ``phi_s phi_s^T`` if the caller already has it)."""
         phi_s = np.asarray(phi_s, dtype=np.float64)
         m = phi_s.shape[0]
         if self.weights_rule == "uniform":
             w = np.full(m, 1.0 / m)
         else:
-            w = solve_simplex_qp(phi_s @ phi_s.T, phi_s @ self.mu)
+            w = solve_simplex_qp(phi_s @ phi_s.T if gram is None else gram, phi_s @ self.mu)
         r = w @ phi_s - self.mu
         return w, float(np.sqrt(max(float(r @ r), 0.0)))
 
@@ -405,7 +408,16 @@ class SwapSelector(Selector):
 
 # ----------------------------------------------------------------------------------- genetic
 class GeneticSelector(Selector):
-    """Genetic algorithm over fixed-size index sets, started from the greedy set."""
+    """Genetic algorithm over fixed-size index sets, started from the greedy set.
+
+    Elitism, tournament selection, a crossover that keeps the genes both parents share and
+    fills up from the others (so every child has exactly ``m`` distinct rows), and mutation
+    that brings in rows from the greedy shortlist or the whole pool; a child's fitness is
+    its feature-space MMD with the problem's weights (simplex weights solved exactly, their
+    Gram matrix mostly copied from the first parent). Runs for ``generations`` at most,
+    stopping early after ``patience`` generations without a better set. The population
+    reported is the ``keep`` best distinct sets met during the run.
+    """
 
     name = "genetic"
 
@@ -413,11 +425,13 @@ class GeneticSelector(Selector):
     def defaults(cls):
         return {
             "population": 20,
-            "generations": 40,
+            "generations": 200,  # at most; see "patience"
+            "patience": 50,  # stop after this many generations without a better set
             "elite": 4,
             "tournament": 3,
-            "mutation_rate": None,  # default: 2 / (number of free genes)
+            "mutation_rate": None,  # default: 1 / (number of free genes)
             "shortlist": 2,  # shortlist length as a multiple of m
+            "shortlist_share": 0.5,  # chance that a mutation draws from the shortlist
             "keep": 8,  # members of the final population reported
         }
 
@@ -429,14 +443,22 @@ class GeneticSelector(Selector):
         fixed_pos = greedy_pos[:k_fixed]
         start = np.sort(greedy_pos[k_fixed:])
         free_pool = np.flatnonzero(problem.pool_free)
-        rate = o["mutation_rate"] if o["mutation_rate"] is not None else 2.0 / max(n_free, 1)
+        rate = o["mutation_rate"] if o["mutation_rate"] is not None else 1.0 / max(n_free, 1)
         cache: dict[bytes, float] = {}
         archive: dict[bytes, np.ndarray] = {}  # every distinct set evaluated
+        grams: dict[bytes, np.ndarray] = {}  # Gram matrices of the living population
+        simplex = problem.weights_rule == "simplex"
 
-        def fitness(genes: np.ndarray) -> float:
+        def fitness(genes: np.ndarray, parent: np.ndarray | None = None) -> float:
             key = genes.tobytes()
             if key not in cache:
-                cache[key] = problem.weigh(problem.phi[np.concatenate([fixed_pos, genes])])[1]
+                full = np.concatenate([fixed_pos, genes])
+                phi_s = problem.phi[full].astype(np.float64)
+                gram = None
+                if simplex:
+                    gram = _inherited_gram(full, phi_s, fixed_pos, parent, grams)
+                    grams[key] = gram
+                cache[key] = problem.weigh(phi_s, gram)[1]
                 archive[key] = genes
             return cache[key]
 
@@ -448,7 +470,7 @@ class GeneticSelector(Selector):
             for i in np.flatnonzero(hit):
                 taken = set(genes.tolist())
                 for _ in range(20):
-                    src = shortlist if (shortlist.size and rng.random() < 0.5) else free_pool
+                    src = shortlist if (shortlist.size and rng.random() < o["shortlist_share"]) else free_pool
                     new = int(src[rng.integers(src.size)])
                     if new not in taken:
                         genes[i] = new
@@ -493,11 +515,19 @@ class GeneticSelector(Selector):
                     child = mutate(child, force=True)
                 if child.tobytes() not in keys:
                     keys.add(child.tobytes())
+                    fitness(child, p1)  # scored now: its Gram matrix is mostly p1's
                     nxt.append(child)
             population = nxt
+            for key in set(grams) - keys:
+                del grams[key]  # only the living population's matrices are kept
             history.append(min(fitness(p) for p in population))
             if progress is not None:
                 progress(gen + 1, generations, "genetic")
+            # stagnation stop (common practice for genetic algorithms): the elite has not
+            # improved for ``patience`` generations
+            patience = int(o["patience"])
+            if len(history) > patience and history[-1] >= history[-1 - patience]:
+                break
         # the reported population: the best distinct sets met during the whole run (the
         # elites and their near-optimal relatives), best first
         ranked = sorted(archive, key=cache.__getitem__)
@@ -511,8 +541,34 @@ class GeneticSelector(Selector):
             "population_mmd": [float(v) for _, v in members],
             "population_overlap": overlap.tolist(),
             "fitness_evaluations": len(cache),
+            "generations_run": len(history) - 1,
         }
         return SelectorResult(members[0][0], population=members, info=info)
+
+
+def _inherited_gram(
+    full: np.ndarray,
+    phi_s: np.ndarray,
+    fixed_pos: np.ndarray,
+    parent: np.ndarray | None,
+    grams: dict[bytes, np.ndarray],
+) -> np.ndarray:
+    """Gram matrix ``phi_s phi_s^T`` of a child set, copying the entries it shares with its
+    parent: only the rows of genes the parent lacks are computed, O(new m F) not O(m^2 F)."""
+    g_parent = None if parent is None else grams.get(parent.tobytes())
+    if g_parent is None:
+        return phi_s @ phi_s.T
+    where = {int(p): i for i, p in enumerate(np.concatenate([fixed_pos, parent]))}
+    src = np.array([where.get(int(p), -1) for p in full])
+    old = np.flatnonzero(src >= 0)
+    new = np.flatnonzero(src < 0)
+    gram = np.empty((full.size, full.size))
+    gram[np.ix_(old, old)] = g_parent[np.ix_(src[old], src[old])]
+    if new.size:
+        rows = phi_s[new] @ phi_s.T
+        gram[new, :] = rows
+        gram[:, new] = rows.T
+    return gram
 
 
 # --------------------------------------------------------------------------------- baselines

@@ -51,6 +51,7 @@ from ._features import (
     draw_feature_map,
     features_of_rows,
     mean_embedding,
+    one_blas_thread,
 )
 from ._kernels import KERNELS, KernelName, get_kernel, median_heuristic
 from ._mmd import ExactMMD, mmd_exact
@@ -401,7 +402,15 @@ def _auto_features(
     return chosen, history
 
 
-def _run(
+def _run(*args: Any, **kwargs: Any) -> Selection:
+    # every product here is small in one dimension (d columns, m chosen rows, one vector):
+    # OpenBLAS threads lose up to 10x on those (benchmarks/bench_thin.py, BLAS threads), so
+    # BLAS runs on one thread and the streamed feature pass supplies the parallelism
+    with one_blas_thread():
+        return _run_one_thread(*args, **kwargs)
+
+
+def _run_one_thread(
     x: np.ndarray,
     m: int,
     s: _Settings,
@@ -706,7 +715,8 @@ def thin(
         ``progress(done, total, what)``, called during long steps.
     **method_options
         Options of the selector (swap: ``max_sweeps``; genetic: ``population``,
-        ``generations``, ``elite``, ``tournament``, ``mutation_rate``, ``shortlist``, ``keep``).
+        ``generations``, ``patience``, ``elite``, ``tournament``, ``mutation_rate``,
+        ``shortlist``, ``shortlist_share``, ``keep``).
 
     Returns
     -------

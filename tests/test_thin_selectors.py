@@ -260,3 +260,33 @@ def test_invariants_on_random_chains(n, d, reps, m_frac, method, rule, kernel, s
     if m == n:  # every distinct row chosen: simplex weights reproduce the chain exactly
         if rule == "simplex":
             assert sel.mmd_features < 1e-6
+
+
+def test_inherited_gram_equals_direct_product():
+    # oracle: the Gram matrix computed directly, phi_s phi_s^T (numpy)
+    from winnow.tasks._selectors import _inherited_gram
+
+    rng = np.random.default_rng(12)
+    phi = rng.standard_normal((40, 16))
+    fixed = np.array([3, 7])
+    parent = np.sort(rng.choice(np.setdiff1d(np.arange(40), fixed), 10, replace=False))
+    child = np.sort(np.r_[parent[:6], np.setdiff1d(np.arange(40), np.r_[fixed, parent])[:4]])
+    full_p, full_c = np.r_[fixed, parent], np.r_[fixed, child]
+    grams = {parent.tobytes(): phi[full_p] @ phi[full_p].T}
+    got = _inherited_gram(full_c, phi[full_c], fixed, parent, grams)
+    np.testing.assert_allclose(got, phi[full_c] @ phi[full_c].T, rtol=1e-13, atol=1e-13)
+    # no stored parent matrix: computed in full
+    alone = _inherited_gram(full_c, phi[full_c], fixed, None, grams)
+    np.testing.assert_allclose(alone, phi[full_c] @ phi[full_c].T, rtol=1e-13, atol=1e-13)
+
+
+def test_genetic_stops_after_patience_and_reports_generations(chain):
+    sel = thin(chain, 12, method="genetic", rng=2, **FAST, population=6, generations=400,
+               patience=3)  # fmt: skip
+    info = sel.report["selector"]
+    ran = info["generations_run"]
+    assert ran < 400 and len(info["best_mmd_history"]) == ran + 1
+    hist = info["best_mmd_history"]
+    # stopped because the last `patience` generations brought nothing better (common practice)
+    assert hist[-1] >= hist[-4]
+    assert all(b <= a + 1e-15 for a, b in zip(hist, hist[1:]))  # elitism: never worse
