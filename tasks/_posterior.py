@@ -36,13 +36,14 @@ import numpy as np
 import numpy.typing as npt
 from scipy import special
 
-from winnow.tasks._priors import Prior, PriorSet, as_prior_set
+from winnow.tasks._priors import _SMALL, Prior, PriorSet, as_prior_set
 
 __all__ = ["LIKELIHOODS", "LogPosterior", "build_log_posterior", "load_callable"]
 
 Likelihood = Literal["gaussian", "student_t"]
 LIKELIHOODS: tuple[str, ...] = ("gaussian", "student_t")
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
+_SMALL_LL = 64  # batches of up to this many predictions: the likelihood in Python floats
 
 
 # --------------------------------------------------------------------------------------------
@@ -154,8 +155,10 @@ class LogPosterior:
         *,
         model: str,
         vectorised: bool,
+        small: Callable[[np.ndarray], list[float]] | None = None,
     ) -> None:
         self.priors = priors
+        self._small = small
         self.names = priors.names
         self.units = priors.units
         self.model = model
@@ -193,6 +196,10 @@ class LogPosterior:
     def rows_at_unconstrained(self, u: np.ndarray) -> np.ndarray:
         """:meth:`at_unconstrained` laid out as the samplers keep their chains: shape
         (k, 2 d + 2), rows ``[u | x | log posterior + log-Jacobian | log posterior]``."""
+        if self._small is not None and u.size <= _SMALL:
+            lists = self.priors.rows_small(u)
+            if lists is not None:
+                return self._finish_small(lists)
         rows = self.priors.transform_rows(u)
         d = self.d
         x = rows[:, d : 2 * d]
@@ -201,6 +208,23 @@ class LogPosterior:
         lp = self._add_model(x, rows[:, 2 * d + 1])  # in place: the log prior's column
         rows[:, 2 * d] += lp  # the log-Jacobian's column
         return rows
+
+    def _finish_small(self, lists: list[list[float]]) -> np.ndarray:
+        """:meth:`rows_at_unconstrained` of a few rows held as Python floats: the model's
+        term is added in Python (``self._small``) and numpy sees the rows once at the
+        end. After a slow model each numpy call runs with cold CPU caches, so this saves
+        most of the per-step work on a handful of chains."""
+        d = self.d
+        ll = self._small(np.array([r[d : 2 * d] for r in lists]))  # type: ignore[misc]
+        self.n_evals += len(ll)
+        for r, v in zip(lists, ll, strict=True):
+            if not math.isfinite(v):  # outside the model's domain: see the module notes
+                self.n_nonfinite += 1
+                v = -math.inf
+            lp = r[-1] + v
+            r[-1] = lp  # log posterior
+            r[-2] += lp  # + log-Jacobian
+        return np.array(lists)
 
     def _add_model(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
         """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""
@@ -308,6 +332,29 @@ def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndar
         r *= r
         ll = np.dot(r, half_prec)  # sum of r^2 / (2 s^2); np.dot: less overhead than @
         return np.subtract(const, ll, out=ll)
+
+    return loglik
+
+
+def _gaussian_fixed_lists(s: np.ndarray, y: np.ndarray) -> Callable[[np.ndarray], list[float]]:
+    """:func:`_gaussian_fixed` returning a list of floats: for up to ``_SMALL_LL`` values
+    the sums run in Python floats (the same terms, summed in the same order)."""
+    half_prec = 0.5 / (s * s)
+    const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
+    pairs = list(zip(y.tolist(), half_prec.tolist(), strict=True))
+    numpy_loglik = _gaussian_fixed(s)
+
+    def loglik(pred: np.ndarray) -> list[float]:
+        if pred.size > _SMALL_LL:
+            return numpy_loglik(pred, y).tolist()
+        out = []
+        for row in pred.tolist():
+            acc = 0.0
+            for p, (yj, hj) in zip(row, pairs, strict=True):
+                r = p - yj
+                acc += r * r * hj
+            out.append(const - acc)
+        return out
 
     return loglik
 
@@ -553,11 +600,16 @@ def build_log_posterior(
     identity = cols == list(range(ps.d))
     if fixed_sigma is not None and likelihood == "gaussian":
         fixed_loglik = _gaussian_fixed(fixed_sigma)
+        listed_loglik = _gaussian_fixed_lists(fixed_sigma, y)
 
         def evaluate_fixed(x: np.ndarray) -> np.ndarray:
             return fixed_loglik(caller(x if identity else x[:, cols]), y)
 
-        return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec)
+        def evaluate_listed(x: np.ndarray) -> list[float]:
+            return listed_loglik(caller(x if identity else x[:, cols]))
+
+        small = None if vec else evaluate_listed  # a model called row by row
+        return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec, small=small)
 
     def evaluate_forward(x: np.ndarray) -> np.ndarray:
         s = fixed_sigma[None, :] if fixed_sigma is not None else x[:, [noise_col]]

@@ -306,9 +306,9 @@ class PriorSet:
         shape (k, 2 d + 2) with rows ``[u | x | log_jac | log_prior]``."""
         d = self.d
         if u.size <= _SMALL:
-            rows = self._rows_small(u)
-            if rows is not None:
-                return rows
+            lists = self.rows_small(u)
+            if lists is not None:
+                return np.array(lists)
         x, log_prior, log_jac = self._fused(u)
         rows = np.empty((len(u), 2 * d + 2))
         rows[:, :d] = u
@@ -350,8 +350,9 @@ class PriorSet:
         r += self._t_const
         return x, r[:, 0], r[:, 1]
 
-    def _rows_small(self, u: np.ndarray) -> np.ndarray | None:
-        """:meth:`transform_rows` of a few rows in Python floats (None: leave it to numpy).
+    def rows_small(self, u: np.ndarray) -> list[list[float]] | None:
+        """:meth:`transform_rows` of a few rows in Python floats, as lists (None: leave it
+        to numpy). Meant for batches of up to ``_SMALL`` values.
 
         For a handful of values a numpy call costs far more than the arithmetic, and more
         again when a slow model has pushed numpy's code out of the CPU caches between
@@ -398,7 +399,7 @@ class PriorSet:
             rows.append(row)
         if not math.isfinite(total):
             return None
-        return np.array(rows)
+        return rows
 
     # ---------------------------------------------------------------- draws
     def ppf(self, q: npt.ArrayLike) -> np.ndarray:

@@ -125,8 +125,8 @@ def test_small_batches_take_the_scalar_path_and_agree_with_numpy(monkeypatch):
     ps = as_prior_set(_specs(ORDER))
     u = np.random.default_rng(4).normal(scale=4.0, size=(4, len(ORDER)))
     assert u.size <= _priors._SMALL  # the default path of a handful of chains
-    small = ps._rows_small(u)
-    assert small is not None
+    small = np.array(ps.rows_small(u))
+    assert small.shape == (4, 2 * len(ORDER) + 2)
     monkeypatch.setattr(_priors, "_SMALL", 0)
     np.testing.assert_allclose(small, ps.transform_rows(u), rtol=1e-13, atol=1e-13)
     d = len(ORDER)
@@ -136,7 +136,7 @@ def test_small_batches_take_the_scalar_path_and_agree_with_numpy(monkeypatch):
     np.testing.assert_allclose(small[:, 2 * d], lj, rtol=1e-13)
     np.testing.assert_allclose(small[:, 2 * d + 1], lp, rtol=1e-13)
     u[1, 0] = -750.0  # logistic map: exp(-u) would overflow in Python floats
-    assert ps._rows_small(u) is None
+    assert ps.rows_small(u) is None
 
 
 def test_at_unconstrained_equals_the_log_posterior_of_the_mapped_rows():
@@ -271,3 +271,33 @@ def test_de_proposal_against_its_formula(max_pairs, monkeypatch):
         expect += 1e-4 * others.std(axis=0) * e[t]
         np.testing.assert_allclose(got[t], expect, rtol=1e-12, atol=1e-14)
     assert not np.allclose(got[0], got[1])  # each iteration its own draws
+
+
+# ------------------------------------------------------------------ the small-batch path
+@pytest.mark.parametrize("n_obs", [3, 40], ids=["python-sums", "numpy-sums"])
+def test_small_batch_path_equals_the_general_path_and_counts_nonfinite(n_obs):
+    # Gaussian likelihood reference: scipy.stats.norm.logpdf summed over observations.
+    t_obs = np.linspace(0.1, 2.0, n_obs)
+    y = 0.3 + 0.8 * t_obs
+
+    def model(theta, inputs):
+        if theta[0] > 1.0:
+            return np.full(n_obs, np.nan)  # outside the model's domain
+        return theta[0] + theta[1] * t_obs
+
+    lp = build_log_posterior(PRIORS_LOOP, forward=model, observations=y, sigma=0.3, vectorised="no")
+    assert lp._small is not None
+    ps = lp.priors
+    u = np.array([[0.1, 0.2], [1.2, -1.0], [-1.0, 0.9], [0.0, 0.0]])  # a = 1.2: NaN
+    with np.errstate(all="ignore"):
+        rows = lp.rows_at_unconstrained(u)
+    x = ps.to_user(u)
+    assert lp.n_evals == 4 and lp.n_nonfinite == 1
+    pred = x[:, :1] + x[:, 1:2] * t_obs
+    ref = stats.norm(pred, 0.3).logpdf(y).sum(axis=1) + ps.logpdf(x)
+    ref[1] = -np.inf
+    np.testing.assert_array_equal(rows[:, :2], u)
+    np.testing.assert_allclose(rows[:, 2:4], x, rtol=1e-15)
+    np.testing.assert_allclose(rows[:, 5], ref, rtol=1e-12)
+    np.testing.assert_allclose(rows[:, 4], ref + ps.log_jacobian(u), rtol=1e-12)
+    np.testing.assert_allclose(lp(x), ref, rtol=1e-12)  # the general path, same values
