@@ -211,3 +211,17 @@ def test_mean_embedding_matches_oracle_and_is_bit_identical_across_workers(kerne
     t64 = ((x - f64.mean) / f64.scale) @ f64.omega.T
     want64 = counts @ np.hstack([np.cos(t64), np.sin(t64)]) / counts.sum() / np.sqrt(n_freq)
     np.testing.assert_allclose(mu64, want64, atol=1e-12)
+
+
+def test_thinning_import_does_not_load_numba_and_kernels_release_the_gil():
+    # numba costs ~0.5 s to import: the thin module loads it on the first feature pass only
+    import subprocess
+    import sys
+
+    code = "import sys, winnow.tasks.thinning; print('numba' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
+    # the mean-embedding workers run the kernels in parallel only if they drop the GIL
+    for kernel in (_trig.cos_sin_sums, _trig.cos_sin_features):
+        assert kernel.targetoptions["nogil"] is True
+        assert kernel.targetoptions.get("parallel", False) is False  # workers give parallelism
