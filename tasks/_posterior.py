@@ -196,10 +196,9 @@ class LogPosterior:
     def rows_at_unconstrained(self, u: np.ndarray) -> np.ndarray:
         """:meth:`at_unconstrained` laid out as the samplers keep their chains: shape
         (k, 2 d + 2), rows ``[u | x | log posterior + log-Jacobian | log posterior]``."""
-        if self._small is not None and u.size <= _SMALL:
-            lists = self.priors.rows_small(u)
-            if lists is not None:
-                return self._finish_small(lists)
+        lists = self.lists_at_unconstrained(u)
+        if lists is not None:
+            return np.array(lists)
         rows = self.priors.transform_rows(u)
         d = self.d
         x = rows[:, d : 2 * d]
@@ -209,13 +208,23 @@ class LogPosterior:
         rows[:, 2 * d] += lp  # the log-Jacobian's column
         return rows
 
-    def _finish_small(self, lists: list[list[float]]) -> np.ndarray:
-        """:meth:`rows_at_unconstrained` of a few rows held as Python floats: the model's
-        term is added in Python (``self._small``) and numpy sees the rows once at the
-        end. After a slow model each numpy call runs with cold CPU caches, so this saves
-        most of the per-step work on a handful of chains."""
+    def lists_at_unconstrained(self, u: np.ndarray) -> list[list[float]] | None:
+        """:meth:`rows_at_unconstrained` as lists of Python floats, for a few rows of a
+        model called row by row with a known Gaussian noise; None otherwise (or when a
+        value is not finite): then use :meth:`rows_at_unconstrained`.
+
+        The prior's terms and the likelihood are summed in Python floats and numpy sees
+        the rows only to pass them to the model. After a slow model every numpy call runs
+        with cold CPU caches, so this saves most of the per-step work on a handful of
+        chains.
+        """
+        if self._small is None or u.size > _SMALL:
+            return None
+        lists = self.priors.rows_small(u)
+        if lists is None:
+            return None
         d = self.d
-        ll = self._small(np.array([r[d : 2 * d] for r in lists]))  # type: ignore[misc]
+        ll = self._small(np.array([r[d : 2 * d] for r in lists]))
         self.n_evals += len(ll)
         for r, v in zip(lists, ll, strict=True):
             if not math.isfinite(v):  # outside the model's domain: see the module notes
@@ -224,7 +233,7 @@ class LogPosterior:
             lp = r[-1] + v
             r[-1] = lp  # log posterior
             r[-2] += lp  # + log-Jacobian
-        return np.array(lists)
+        return lists
 
     def _add_model(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
         """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""

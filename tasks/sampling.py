@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import math
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
@@ -119,6 +120,11 @@ class _Target:
             rows = self.rows(u)
         d = self.ps.d
         return rows[:, 2 * d], rows[:, 2 * d + 1], rows[:, d : 2 * d]
+
+    def lists(self, u: np.ndarray) -> list[list[float]] | None:
+        """:meth:`rows` as lists of Python floats when the log posterior offers them (a
+        few rows of a row-by-row model, see ``LogPosterior.lists_at_unconstrained``)."""
+        return self.f.lists_at_unconstrained(u) if self.clean else None  # type: ignore[attr-defined]
 
     def rows(self, u: np.ndarray) -> np.ndarray:
         """Rows ``[u | x(u) | target | log posterior]``, shape (k, 2 d + 2), as the sampler
@@ -421,12 +427,31 @@ def sample(
                 block = block_end - block_start
                 block_rng = np.random.default_rng([block_seed, block_start // _BLOCK])
                 log_uniform = np.log(block_rng.random((block, n_chains)))
+                log_uniform_rows = log_uniform.tolist()
             j = t - block_start
             for ctx, sl, u_g, u_others, lpu_g, ap_g, now_g, accepted_g in steps:
                 ctx.iteration, ctx.adapting = t, adapting
                 ctx.block, ctx.block_start = block, block_start
                 ctx.accept_prob = None if t == 0 or not uses_ap else ap_g
                 y, log_q = move.propose(u_g, u_others, block_rng, ctx)
+                listed = target.lists(y)
+                if listed is not None:
+                    # A few rows as Python floats: the same test and updates, row by row
+                    # (after a slow model each numpy call costs several microseconds).
+                    current, ratio = lpu_g.tolist(), log_q.tolist()
+                    log_u_g = log_uniform_rows[j][sl]
+                    probs = []
+                    for i, row in enumerate(listed):
+                        log_alpha_i = row[col_target] - current[i] + ratio[i]
+                        if uses_ap:
+                            probs.append(math.exp(min(log_alpha_i, 0.0)))
+                        if log_u_g[i] < log_alpha_i:
+                            now_g[i] = row
+                            if not adapting:
+                                accepted_g[i] += 1.0
+                    if uses_ap:
+                        ap_g[:] = probs
+                    continue
                 prop = target.rows(y)  # laid out as `now`
                 # the target is finite or -inf, lpu finite: log_alpha is never NaN.
                 log_alpha = prop[:, col_target] - lpu_g

@@ -17,7 +17,7 @@ from scipy import stats
 
 from winnow.tasks import _priors
 from winnow.tasks._priors import as_prior_set
-from winnow.tasks.sampling import build_log_posterior
+from winnow.tasks.sampling import build_log_posterior, sample
 
 SPECS = [
     ({"name": "u", "dist": "uniform", "low": -5, "high": -1}, stats.uniform(-5, 4)),
@@ -301,3 +301,60 @@ def test_small_batch_path_equals_the_general_path_and_counts_nonfinite(n_obs):
     np.testing.assert_allclose(rows[:, 5], ref, rtol=1e-12)
     np.testing.assert_allclose(rows[:, 4], ref + ps.log_jacobian(u), rtol=1e-12)
     np.testing.assert_allclose(lp(x), ref, rtol=1e-12)  # the general path, same values
+
+
+# ------------------------------------------------------------------ samplers on that path
+T_REG = np.linspace(0.0, 2.0, 6)
+Y_REG = np.array([0.35, 0.62, 1.3, 1.41, 2.05, 2.2])
+SIGMA_REG = 0.25
+PRIORS_REG = [
+    {"name": "a", "dist": "normal", "mu": 0.0, "sigma": 2.0},
+    {"name": "b", "dist": "normal", "mu": 0.0, "sigma": 2.0},
+]
+N_CHAINS = {"adaptive_metropolis": 4, "ensemble": 8, "de_mcmc": 8}
+
+
+def _regression_lp():
+    def line(theta, inputs):  # called row by row
+        return theta[0] + theta[1] * T_REG
+
+    lp = build_log_posterior(
+        PRIORS_REG, forward=line, observations=Y_REG, sigma=SIGMA_REG, vectorised="no"
+    )
+    assert lp._small is not None  # the Python-float path of a handful of chains
+    return lp
+
+
+@pytest.mark.parametrize("sampler", list(N_CHAINS))
+def test_row_by_row_model_posterior_and_resume(sampler):
+    # Linear-Gaussian regression with a Gaussian prior: Gelman et al., Bayesian Data
+    # Analysis, 3rd ed. (2013), Sec. 14.8 (prior as extra data): posterior
+    # N(V (X'y / sigma^2 + m0 / s0^2), V), V = (X'X / sigma^2 + I / s0^2)^-1.
+    X = np.column_stack([np.ones_like(T_REG), T_REG])
+    V = np.linalg.inv(X.T @ X / SIGMA_REG**2 + np.eye(2) / 4.0)
+    mean = V @ (X.T @ Y_REG / SIGMA_REG**2)
+    chain = sample(
+        _regression_lp(), sampler=sampler, n_chains=N_CHAINS[sampler], n_draws=2000, rng=11
+    )
+    for j, name in enumerate(chain.names):
+        p = chain.diagnostics.parameters[name]
+        # 5 MCSE (fixed seed; a margin for the MCSE's own error)
+        assert abs(p.mean - mean[j]) < 5 * p.mcse_mean, (sampler, name, p.mean, mean[j])
+        # sd: the MCSE of a variance is about var sqrt(2 / ESS) (common practice); 5 of those
+        assert abs(p.sd - np.sqrt(V[j, j])) < 5 * np.sqrt(V[j, j]) * np.sqrt(0.5 / p.ess_bulk)
+    # one evaluation per chain and iteration, plus the starting points (one prior draw each)
+    assert chain.diagnostics.details["model_evaluations"] == N_CHAINS[sampler] * 2001
+    # log_density is the log posterior of each row (the general path's value)
+    np.testing.assert_allclose(chain.log_density[:50], _regression_lp()(chain.samples[:50]))
+
+    states = {}
+    kw = dict(sampler=sampler, n_chains=N_CHAINS[sampler], n_draws=300, rng=5)
+    whole = sample(
+        _regression_lp(),
+        checkpoint=lambda s: states.update({s["iteration"]: s}),
+        checkpoint_every=100,
+        **kw,
+    )
+    resumed = sample(_regression_lp(), resume=states[200], **kw)
+    np.testing.assert_array_equal(resumed.samples, whole.samples)
+    np.testing.assert_array_equal(resumed.diagnostics.acceptance, whole.diagnostics.acceptance)
