@@ -106,6 +106,10 @@ class Move(ABC):
     ensemble: ClassVar[bool] = False
     #: False for moves that never read ``ctx.accept_prob`` (the driver then skips it).
     uses_accept_prob: ClassVar[bool] = True
+    #: Proposals of up to this many values (chains x dimension) may be computed in Python
+    #: floats: a numpy call costs more than the arithmetic, and after a slow model it runs
+    #: with cold CPU caches.
+    small_batch: ClassVar[int] = 48
 
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
         self.d = d
@@ -382,6 +386,13 @@ class StretchMove(Move):
     ) -> tuple[np.ndarray, np.ndarray]:
         m, r = len(x), len(others)
         pick, z, log_q = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
+        if isinstance(z, list):  # a few values: Python floats, the same formula
+            rows = others.tolist()
+            y = [
+                [pk + zi * (xk - pk) for xk, pk in zip(xi, rows[j], strict=True)]
+                for xi, j, zi in zip(x.tolist(), pick, z, strict=True)
+            ]
+            return np.array(y), log_q
         partner = others[pick]
         y = x - partner
         y *= z[:, None]
@@ -390,12 +401,16 @@ class StretchMove(Move):
 
     def _draw(
         self, rng: np.random.Generator, n: int, m: int, r: int
-    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Partners, stretch factors and log proposal ratios of ``n`` iterations."""
+    ) -> tuple[np.ndarray | list, np.ndarray | list, np.ndarray]:
+        """Partners, stretch factors and log proposal ratios of ``n`` iterations (the first
+        two as lists for a few values, see ``small_batch``)."""
         pick = rng.integers(r, size=(n, m))
         # Inverse CDF of g(z) ~ z^-1/2 on [1/a, a]: z = ((a - 1) U + 1)^2 / a.
         z = ((self.a - 1.0) * rng.random((n, m)) + 1.0) ** 2 / self.a
-        return pick, z, (self.d - 1.0) * np.log(z)  # Eq. (9)
+        log_q = (self.d - 1.0) * np.log(z)  # Eq. (9)
+        if m * self.d <= self.small_batch:
+            return pick.tolist(), z.tolist(), log_q
+        return pick, z, log_q
 
 
 class DifferentialEvolution(Move):
@@ -423,6 +438,8 @@ class DifferentialEvolution(Move):
     ) -> tuple[np.ndarray, np.ndarray]:
         m, r = len(x), len(others)
         *pairs, e = self._ahead(ctx, rng, lambda g, n: self._draw(g, n, m, r))
+        if isinstance(e, list):  # a few values: Python floats, the same formula
+            return self._propose_small(x, others, *pairs, e), self._no_ratio(m)
         # The others' standard deviation per coordinate; np.dot for the means costs a
         # fraction of numpy's std on a few walkers.
         w = self._mean_weights.get(r)
@@ -448,18 +465,48 @@ class DifferentialEvolution(Move):
     def __init__(self, d: int, n_chains: int, initial_scale: np.ndarray) -> None:
         super().__init__(d, n_chains, initial_scale)
         self._mean_weights: dict[int, np.ndarray] = {}
+        self._initial_scale = self.initial_scale.tolist()
+
+    def _propose_small(
+        self,
+        x: np.ndarray,
+        others: np.ndarray,
+        r1: list[int],
+        r2: list[int],
+        gamma: list[float],
+        e: list[list[float]],
+    ) -> np.ndarray:
+        """:meth:`propose` for a few values, in Python floats."""
+        rows = others.tolist()
+        r = len(rows)
+        scale = []  # jitter times the others' standard deviation, per coordinate
+        for col, s0 in zip(zip(*rows, strict=True), self._initial_scale, strict=True):
+            mu = sum(col) / r
+            sd = math.sqrt(sum((v - mu) * (v - mu) for v in col) / r)
+            scale.append(self.jitter * (sd if sd > 0 else s0))
+        y = [
+            [
+                xk + g * (ak - bk) + sk * ek
+                for xk, ak, bk, sk, ek in zip(xi, rows[a], rows[b], scale, ei, strict=True)
+            ]
+            for xi, a, b, g, ei in zip(x.tolist(), r1, r2, gamma, e, strict=True)
+        ]
+        return np.array(y)
 
     def _draw(self, rng: np.random.Generator, n: int, m: int, r: int) -> tuple[np.ndarray, ...]:
         """Pairs of others with their step factors, and unit jitters, of ``n`` iterations.
 
-        The pairs come as ``(r1, r2, gamma)``, or for up to ``max_pair_matrix`` walker
-        pairs as one matrix per iteration, shape (m, r), holding ``gamma`` at ``r1`` and ``-gamma`` at
+        The pairs come as ``(r1, r2, gamma)`` (lists, with the jitters, for up to
+        ``small_batch`` values), or for up to ``max_pair_matrix`` walker pairs as one
+        matrix per iteration, shape (m, r), holding ``gamma`` at ``r1`` and ``-gamma`` at
         ``r2`` in each row.
         """
         r1 = rng.integers(r, size=(n, m))
         r2 = (r1 + rng.integers(1, r, size=(n, m))) % r  # uniform over the others, != r1
         gamma = np.where(rng.random((n, m)) < self.p_mode_jump, 1.0, 2.38 / math.sqrt(2 * self.d))
         e = rng.standard_normal((n, m, self.d))
+        if m * self.d <= self.small_batch:
+            return r1.tolist(), r2.tolist(), gamma.tolist(), e.tolist()
         if m * r > self.max_pair_matrix:
             return r1, r2, gamma, e
         pick = np.zeros((n, m, r))

@@ -246,13 +246,16 @@ def test_scalar_log_density_of_floats_and_one_element_arrays():
 
 
 # ------------------------------------------------------------------ moves drawing ahead
-@pytest.mark.parametrize("max_pairs", [1024, 0], ids=["pair-matrix", "gather"])
-def test_de_proposal_against_its_formula(max_pairs, monkeypatch):
+@pytest.mark.parametrize(
+    ("small", "max_pairs"), [(48, 1024), (0, 1024), (0, 0)], ids=["python", "pair-matrix", "gather"]
+)
+def test_de_proposal_against_its_formula(small, max_pairs, monkeypatch):
     # ter Braak (2006): y = x + gamma (x_r1 - x_r2) + e, e ~ N(0, (1e-4 sd of the others)^2)
     # per coordinate; the oracle redraws the same numbers and uses numpy's std.
     from winnow.tasks._samplers import DifferentialEvolution, StepContext
 
     monkeypatch.setattr(DifferentialEvolution, "max_pair_matrix", max_pairs)
+    monkeypatch.setattr(DifferentialEvolution, "small_batch", small)
     d, m, r, n = 3, 4, 5, 6
     move = DifferentialEvolution(d, m + r, np.ones(d))
     x = np.random.default_rng(1).normal(size=(m, d))
@@ -358,3 +361,27 @@ def test_row_by_row_model_posterior_and_resume(sampler):
     resumed = sample(_regression_lp(), resume=states[200], **kw)
     np.testing.assert_array_equal(resumed.samples, whole.samples)
     np.testing.assert_array_equal(resumed.diagnostics.acceptance, whole.diagnostics.acceptance)
+
+
+@pytest.mark.parametrize("small", [48, 0], ids=["python", "numpy"])
+def test_stretch_proposal_against_its_formula(small, monkeypatch):
+    # Goodman & Weare (2010), Eqs. (7), (9): y = x_j + z (x_k - x_j), log q ratio
+    # (d - 1) log z, z = ((a - 1) U + 1)^2 / a; the oracle redraws the same numbers.
+    from winnow.tasks._samplers import StepContext, StretchMove
+
+    monkeypatch.setattr(StretchMove, "small_batch", small)
+    d, m, r, n = 3, 4, 4, 5
+    move = StretchMove(d, m + r, np.ones(d))
+    x = np.random.default_rng(1).normal(size=(m, d))
+    others = np.random.default_rng(2).normal(size=(r, d))
+    got = []
+    for t in range(n):
+        ctx = StepContext(t, np.arange(m), True, None, block=n if t == 0 else 0, block_start=0)
+        got.append(move.propose(x, others, np.random.default_rng(9), ctx))
+    g = np.random.default_rng(9)
+    pick = g.integers(r, size=(n, m))
+    z = (g.random((n, m)) + 1.0) ** 2 / 2.0
+    for t in range(n):
+        p = others[pick[t]]
+        np.testing.assert_allclose(got[t][0], p + z[t][:, None] * (x - p), rtol=1e-13)
+        np.testing.assert_allclose(got[t][1], (d - 1) * np.log(z[t]), rtol=1e-13)
