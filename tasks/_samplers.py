@@ -25,6 +25,8 @@ References
    Statistics and Computing 16, 239-249.
 .. [5] Foreman-Mackey, D., Hogg, D. W., Lang, D., Goodman, J. (2013). emcee: the MCMC
    hammer. PASP 125, 306-312.
+.. [6] Chan, T. F., Golub, G. H., LeVeque, R. J. (1983). Algorithms for computing the sample
+   variance: analysis and recommendations. The American Statistician 37(3), 242-247.
 """
 
 from __future__ import annotations
@@ -249,6 +251,8 @@ class AdaptiveMetropolis(Move):
             "chol": np.linalg.cholesky(c0),
             "log_lambda": np.zeros(n_chains),
             "steps": np.zeros(1),
+            "buffer": np.zeros((self.refresh, n_chains, d)),  # states not yet folded in
+            "held": np.zeros(1),
         }
 
     def window_ends(self, burn_in: int) -> set[int]:
@@ -292,6 +296,7 @@ class AdaptiveMetropolis(Move):
                 st["steps"][0] = steps
             ends = self.window_ends(ctx.burn_in)
             if t in ends:
+                self._flush()
                 n = st["count"][0]
                 if n >= 3.0:
                     cov = self._empirical()
@@ -302,16 +307,12 @@ class AdaptiveMetropolis(Move):
                     st["chol"] = _cholesky(cov[None])[0]
                     st["log_lambda"][:] = 0.0  # tuned afresh around s_d C
                     st["steps"][0] = 0.0
-                st["count"][0] = 0.0
-                st["mean"][:] = 0.0
-                st["m2"][:] = 0.0
+                self._reset_statistics()
             if t < self._last_end:
                 self._update(x, i)
             elif t == ctx.burn_in - 1:
                 # The kept draws start plain AM afresh, with the burn-in's C as C_0.
-                st["count"][0] = 0.0
-                st["mean"][:] = 0.0
-                st["m2"][:] = 0.0
+                self._reset_statistics()
         else:
             # Plain AM (Haario et al. 2001): C_0 until t0, then the pooled C_t of the history.
             c = self._update(x, i)
@@ -333,28 +334,66 @@ class AdaptiveMetropolis(Move):
         return step, self._no_ratio(m)
 
     def _update(self, x: np.ndarray, i: slice | np.ndarray) -> int:
-        """Welford update of the chains' means and the pooled scatter matrix (Haario et al.
-        2001, Eq. (3), summed over chains); returns the draws per chain so far."""
+        """Add the chains' states to the running means and pooled scatter matrix (Haario et
+        al. 2001, Eq. (3), summed over chains); returns the draws per chain so far.
+
+        The states of all chains are held for up to ``refresh`` iterations and folded in
+        at once by :meth:`_flush` (before anything reads the statistics): one copy per
+        iteration instead of a recursive update's several small array operations.
+        """
         st = self.state
-        count = st["count"]
-        n = count.item() + 1.0
-        count[0] = n
-        if isinstance(i, slice):  # a view: update the means in place
-            mean = st["mean"][i]
-            delta = x - mean
-            mean += delta * (1.0 / n)
-        else:
+        if not (isinstance(i, slice) and i == slice(None)):  # some chains: at once
+            self._flush()
+            count = st["count"]
+            n = count.item() + 1.0
+            count[0] = n
             mean = st["mean"][i]
             delta = x - mean
             mean += delta * (1.0 / n)
             st["mean"][i] = mean
-        st["m2"] += np.dot(delta.T, x - mean)
-        return int(n)
+            st["m2"] += np.dot(delta.T, x - mean)
+            return int(n)
+        held = st["held"]
+        nb = int(held.item())
+        st["buffer"][nb] = x
+        held[0] = nb + 1
+        total = int(st["count"].item()) + nb + 1
+        if nb + 1 == len(st["buffer"]):
+            self._flush()
+        return total
+
+    def _flush(self) -> None:
+        """Fold the held states into the means and the pooled scatter matrix: the pairwise
+        update of Chan, Golub & LeVeque (1983), per chain and summed over the chains,
+        ``M2 = M2_a + M2_b + delta delta' n_a n_b / n`` (``delta`` the difference of the
+        means of the two parts; the same sums as the recursive update, up to rounding)."""
+        st = self.state
+        nb = int(st["held"].item())
+        if nb == 0:
+            return
+        b = st["buffer"][:nb]  # (nb, chains, d)
+        n0 = st["count"].item()
+        n = n0 + nb
+        batch_mean = np.add.reduce(b, axis=0) * (1.0 / nb)
+        dev = (b - batch_mean).reshape(-1, self.d)
+        delta = batch_mean - st["mean"]
+        st["m2"] += np.dot(dev.T, dev) + np.dot(delta.T, delta) * (n0 * nb / n)
+        st["mean"] += delta * (nb / n)
+        st["count"][0] = n
+        st["held"][0] = 0.0
+
+    def _reset_statistics(self) -> None:
+        st = self.state
+        st["count"][0] = 0.0
+        st["held"][0] = 0.0
+        st["mean"][:] = 0.0
+        st["m2"][:] = 0.0
 
     def _empirical(self) -> np.ndarray:
         """Pooled within-chain covariance plus ``eps I`` (eps relative to the mean variance,
         floored at 1e-12 of the prior variances so that chains that rejected everything
         for a while still get a usable proposal)."""
+        self._flush()
         n = self.state["count"][0]
         k = self.n_chains
         cov = self.state["m2"] / max(k * (n - 1.0), 1.0)

@@ -355,12 +355,15 @@ def test_row_by_row_model_posterior_and_resume(sampler):
     whole = sample(
         _regression_lp(),
         checkpoint=lambda s: states.update({s["iteration"]: s}),
-        checkpoint_every=100,
+        checkpoint_every=35,  # inside blocks of random numbers and AM's held states
         **kw,
     )
-    resumed = sample(_regression_lp(), resume=states[200], **kw)
-    np.testing.assert_array_equal(resumed.samples, whole.samples)
-    np.testing.assert_array_equal(resumed.diagnostics.acceptance, whole.diagnostics.acceptance)
+    if sampler == "adaptive_metropolis":
+        assert states[245]["move:held"][0] == 5  # 95 states after the burn-in, 90 folded in
+    for it in (105, 245):
+        resumed = sample(_regression_lp(), resume=states[it], **kw)
+        np.testing.assert_array_equal(resumed.samples, whole.samples)
+        np.testing.assert_array_equal(resumed.diagnostics.acceptance, whole.diagnostics.acceptance)
 
 
 @pytest.mark.parametrize("small", [48, 0], ids=["python", "numpy"])
