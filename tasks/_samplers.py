@@ -108,6 +108,8 @@ class Move(ABC):
     ensemble: ClassVar[bool] = False
     #: False for moves that never read ``ctx.accept_prob`` (the driver then skips it).
     uses_accept_prob: ClassVar[bool] = True
+    #: True for moves whose proposal is symmetric: their log proposal ratio is always 0.
+    symmetric: ClassVar[bool] = False
     #: Proposals of up to this many values (chains x dimension) may be computed in Python
     #: floats: a numpy call costs more than the arithmetic, and after a slow model it runs
     #: with cold CPU caches.
@@ -226,6 +228,7 @@ class AdaptiveMetropolis(Move):
     """
 
     name = "adaptive_metropolis"
+    symmetric = True
     target_acceptance = 0.234  # Roberts, Gelman & Gilks (1997), common practice
     epsilon = 1e-10  # relative regularisation eps of C (Haario et al. 2001: eps > 0 small)
     refresh = 10  # iterations between Cholesky factorisations of C_t (no burn-in)
@@ -292,7 +295,11 @@ class AdaptiveMetropolis(Move):
                 # a tail while lambda is tuned would otherwise keep a step size fit only there.
                 ap = ctx.accept_prob.tolist()  # a few numbers: Python is quicker
                 mean_accept = sum(ap) / len(ap)
-                st["log_lambda"][i] += gamma * (mean_accept - self.target_acceptance)
+                step_size = gamma * (mean_accept - self.target_acceptance)
+                if isinstance(i, slice):
+                    st["log_lambda"] += step_size
+                else:
+                    st["log_lambda"][i] += step_size
                 st["steps"][0] = steps
             ends = self.window_ends(ctx.burn_in)
             if t in ends:
@@ -321,7 +328,8 @@ class AdaptiveMetropolis(Move):
         m, d = x.shape
         (z,) = self._ahead(ctx, rng, lambda g, n: (g.standard_normal((n, m, d)),))
         # The step is z (sqrt(s_d) lambda L)' for each chain (lambda scales the std dev).
-        chol, lam = st["chol"], st["log_lambda"][i].tolist()
+        chol, lam = st["chol"], st["log_lambda"]
+        lam = (lam if isinstance(i, slice) else lam[i]).tolist()
         if lam.count(lam[0]) == len(lam):  # one lambda for all chains: the usual case
             if chol is not self._factor[0] or lam[0] != self._factor[1]:
                 scaled = chol.T * (self._sqrt_s_d * math.exp(lam[0]))
@@ -464,6 +472,7 @@ class DifferentialEvolution(Move):
     name = "de_mcmc"
     ensemble = True
     uses_accept_prob = False
+    symmetric = True
     p_mode_jump = 0.1
     jitter = 1e-4
     max_pair_matrix = 1024  # up to m * r walker pairs, the pairs as one matrix product

@@ -405,6 +405,7 @@ def sample(
         for k, (g, sl, comp) in enumerate(groups)
     ]
     col_target = 2 * d
+    no_ratio = [0.0] * n_chains  # the log proposal ratio of a symmetric move
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
     what = f"sampling ({sampler})"
     report_every = max(1, n_draws // 100)
@@ -438,7 +439,8 @@ def sample(
                 if listed is not None:
                     # A few rows as Python floats: the same test and updates, row by row
                     # (after a slow model each numpy call costs several microseconds).
-                    current, ratio = lpu_g.tolist(), log_q.tolist()
+                    current = lpu_g.tolist()
+                    ratio = no_ratio if move.symmetric else log_q.tolist()
                     log_u_g = log_uniform_rows[j][sl]
                     probs = []
                     for i, row in enumerate(listed):

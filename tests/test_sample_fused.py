@@ -388,3 +388,19 @@ def test_stretch_proposal_against_its_formula(small, monkeypatch):
         p = others[pick[t]]
         np.testing.assert_allclose(got[t][0], p + z[t][:, None] * (x - p), rtol=1e-13)
         np.testing.assert_allclose(got[t][1], (d - 1) * np.log(z[t]), rtol=1e-13)
+
+
+@pytest.mark.parametrize("name", list(N_CHAINS))
+def test_moves_declared_symmetric_return_a_zero_log_ratio(name):
+    # The driver takes a zero ratio from a move declared symmetric without reading it.
+    from winnow.tasks._samplers import MOVES, StepContext
+
+    move = MOVES[name](2, 8, np.ones(2))
+    x = np.random.default_rng(3).normal(size=(4, 2))
+    others = np.random.default_rng(4).normal(size=(4, 2))
+    ctx = StepContext(0, np.arange(4), False, None, block=1, block_start=0)
+    if name == "adaptive_metropolis":  # one group of all chains
+        move = MOVES[name](2, 4, np.ones(2))
+        others = np.empty((0, 2))
+    _, log_q = move.propose(x, others, np.random.default_rng(5), ctx)
+    assert move.symmetric == (not np.any(log_q))  # stretch: (d - 1) log z, not all zero
