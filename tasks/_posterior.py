@@ -347,7 +347,7 @@ def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndar
 
 def _gaussian_fixed_lists(s: np.ndarray, y: np.ndarray) -> Callable[[np.ndarray], list[float]]:
     """:func:`_gaussian_fixed` returning a list of floats: for up to ``_SMALL_LL`` values
-    the sums run in Python floats (the same terms, summed in the same order)."""
+    the sums run in Python floats (the same terms; equal up to rounding)."""
     half_prec = 0.5 / (s * s)
     const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
     pairs = list(zip(y.tolist(), half_prec.tolist(), strict=True))
