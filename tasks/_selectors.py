@@ -91,6 +91,8 @@ class Problem:
     weights_rule : {"simplex", "uniform"}
     features_of : callable
         ``features_of(ids) -> ndarray (len(ids), F)`` for any distinct ids.
+    coords : ndarray, shape (P, d), optional
+        Standardised coordinates of the pool rows (used to find nearby rows).
     """
 
     phi: np.ndarray
@@ -102,6 +104,7 @@ class Problem:
     fixed: np.ndarray
     weights_rule: str
     features_of: Callable[[np.ndarray], np.ndarray]
+    coords: np.ndarray | None = None
     a: np.ndarray = field(init=False)
     q: np.ndarray = field(init=False)
     fixed_pos: np.ndarray = field(init=False)
@@ -120,9 +123,7 @@ class Problem:
     def n_pool(self) -> int:
         return int(self.phi.shape[0])
 
-    def weigh(
-        self, phi_s: np.ndarray, gram: np.ndarray | None = None
-    ) -> tuple[np.ndarray, float]:
+    def weigh(self, phi_s: np.ndarray, gram: np.ndarray | None = None) -> tuple[np.ndarray, float]:
         """Weights by the problem's rule and the feature-space MMD, for features ``phi_s``
         (``gram``: their Gram matrix ``phi_s phi_s^T`` if the caller already has it)."""
         phi_s = np.asarray(phi_s, dtype=np.float64)
@@ -412,9 +413,9 @@ class GeneticSelector(Selector):
 
     Elitism, tournament selection, a crossover that keeps the genes both parents share and
     fills up from the others (so every child has exactly ``m`` distinct rows), and mutation
-    that brings in rows from the greedy shortlist or the whole pool; a child's fitness is
-    its feature-space MMD with the problem's weights (simplex weights solved exactly, their
-    Gram matrix mostly copied from the first parent). Runs for ``generations`` at most,
+    that moves a gene to a nearby row (creep) or brings in a row from the greedy shortlist
+    or the whole pool. A child's fitness is its feature-space MMD with the problem's weights
+    (simplex weights solved exactly, their Gram matrix mostly copied from the first parent). Runs for ``generations`` at most,
     stopping early after ``patience`` generations without a better set. The population
     reported is the ``keep`` best distinct sets met during the run.
     """
@@ -432,6 +433,8 @@ class GeneticSelector(Selector):
             "mutation_rate": None,  # default: 1 / (number of free genes)
             "shortlist": 2,  # shortlist length as a multiple of m
             "shortlist_share": 0.5,  # chance that a mutation draws from the shortlist
+            "creep_share": 0.5,  # chance that a mutation moves a gene to a nearby row
+            "creep_neighbours": 8,  # nearby rows considered by a creep mutation
             "keep": 8,  # members of the final population reported
         }
 
@@ -444,6 +447,8 @@ class GeneticSelector(Selector):
         start = np.sort(greedy_pos[k_fixed:])
         free_pool = np.flatnonzero(problem.pool_free)
         rate = o["mutation_rate"] if o["mutation_rate"] is not None else 1.0 / max(n_free, 1)
+        near = _Neighbours(problem.coords, int(o["creep_neighbours"]))
+        near = near if near.ok else None
         cache: dict[bytes, float] = {}
         archive: dict[bytes, np.ndarray] = {}  # every distinct set evaluated
         grams: dict[bytes, np.ndarray] = {}  # Gram matrices of the living population
@@ -470,9 +475,16 @@ class GeneticSelector(Selector):
             for i in np.flatnonzero(hit):
                 taken = set(genes.tolist())
                 for _ in range(20):
-                    src = shortlist if (shortlist.size and rng.random() < o["shortlist_share"]) else free_pool
-                    new = int(src[rng.integers(src.size)])
-                    if new not in taken:
+                    u = rng.random()
+                    if near is not None and u < o["creep_share"]:
+                        # creep: a row next to the gene's own row (small step)
+                        cand = near[int(genes[i])]
+                        new = int(cand[rng.integers(cand.size)])
+                    else:
+                        from_short = shortlist.size and rng.random() < o["shortlist_share"]
+                        src = shortlist if from_short else free_pool
+                        new = int(src[rng.integers(src.size)])
+                    if new not in taken and problem.pool_free[new]:
                         genes[i] = new
                         break
             return np.sort(genes)
@@ -544,6 +556,27 @@ class GeneticSelector(Selector):
             "generations_run": len(history) - 1,
         }
         return SelectorResult(members[0][0], population=members, info=info)
+
+
+class _Neighbours:
+    """Nearest pool rows of a pool row in standardised coordinates, looked up on demand
+    (k-d tree, scipy.spatial)."""
+
+    def __init__(self, coords: np.ndarray | None, k: int) -> None:
+        self.ok = coords is not None and k > 0 and coords.shape[0] > k
+        self.coords = coords
+        self.k = k
+        self.found: dict[int, np.ndarray] = {}
+        if self.ok:
+            from scipy.spatial import cKDTree
+
+            self.tree = cKDTree(coords)
+
+    def __getitem__(self, pos: int) -> np.ndarray:
+        if pos not in self.found:
+            _, idx = self.tree.query(self.coords[pos], k=self.k + 1)
+            self.found[pos] = np.asarray(idx[idx != pos][: self.k], dtype=np.int64)
+        return self.found[pos]
 
 
 def _inherited_gram(

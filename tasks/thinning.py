@@ -518,6 +518,7 @@ def _run_one_thread(
         fixed=fixed,
         weights_rule=s.weights,
         features_of=features_of,
+        coords=prep.standardised(pool),
     )
     result = selector.select(problem, m, streams[5], progress)
     ids = result.ids

@@ -290,3 +290,17 @@ def test_genetic_stops_after_patience_and_reports_generations(chain):
     # stopped because the last `patience` generations brought nothing better (common practice)
     assert hist[-1] >= hist[-4]
     assert np.all(np.diff(hist) <= 1e-15)  # elitism: the best never gets worse
+
+
+def test_neighbours_match_brute_force():
+    # oracle: nearest rows by sorting all Euclidean distances (numpy)
+    from winnow.tasks._selectors import _Neighbours
+
+    rng = np.random.default_rng(4)
+    coords = rng.standard_normal((300, 3))
+    near = _Neighbours(coords, 5)
+    for pos in (0, 17, 299):
+        dist = np.linalg.norm(coords - coords[pos], axis=1)
+        want = [int(i) for i in np.argsort(dist) if i != pos][:5]
+        assert near[pos].tolist() == want
+    assert not _Neighbours(None, 5).ok and not _Neighbours(coords[:4], 5).ok
