@@ -345,61 +345,75 @@ def _auto_features(
         levels.append(n_feat)
         n_feat *= 2
     history: list[dict[str, Any]] = []
-    chosen = levels[-1]
     previous = None
-    for li, n_feat in enumerate(levels):
-        phis, mus, sels = [], [], []
-        for _ in range(_AUTO_DRAWS):
-            fmap = draw_feature_map(
-                kern, d, n_feat, s.feature_map, bandwidth, prep.mean, prep.scale, rng, dtype
+
+    def one_draw(fmap: FeatureMap) -> tuple[np.ndarray, np.ndarray, tuple]:
+        phi = features_of_rows(fmap, prep.x, z_rows, chunk_size=_chunk_rows(None, fmap.width))
+        mu = (cnt.astype(np.float64) @ phi) / cnt.sum()
+        problem = Problem(
+            phi=phi,
+            mu=mu,
+            pool=np.arange(ids.size),
+            counts=cnt,
+            inverse=np.arange(ids.size),
+            allowed=np.ones(ids.size, bool),
+            fixed=np.zeros(0, np.int64),
+            weights_rule=s.weights,
+            features_of=phi.__getitem__,
+        )
+        pos = np.asarray(GreedyState(problem, problem.fixed_pos, problem.pool_free).run(m_pilot))
+        w, own = problem.weigh(phi[pos])
+        return phi, mu, (pos, w, own)
+
+    # the draws of a level are independent: drawn in order from ``rng`` (so the result does
+    # not depend on the thread count), then worked on by ``s.workers`` threads (numpy and
+    # the trig kernels release the GIL)
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=max(1, min(s.workers, _AUTO_DRAWS))) as pool:
+        for li, n_feat in enumerate(levels):
+            fmaps = [
+                draw_feature_map(
+                    kern, d, n_feat, s.feature_map, bandwidth, prep.mean, prep.scale, rng, dtype
+                )
+                for _ in range(_AUTO_DRAWS)
+            ]
+            phis, mus, sels = map(list, zip(*pool.map(one_draw, fmaps), strict=True))
+            stop, chosen, previous = _auto_level(
+                li, n_feat, phis, mus, sels, history, previous, s, levels, progress
             )
-            phi = features_of_rows(fmap, prep.x, z_rows, chunk_size=_chunk_rows(None, 2 * n_feat))
-            mu = (cnt.astype(np.float64) @ phi) / cnt.sum()
-            problem = Problem(
-                phi=phi,
-                mu=mu,
-                pool=np.arange(ids.size),
-                counts=cnt,
-                inverse=np.arange(ids.size),
-                allowed=np.ones(ids.size, bool),
-                fixed=np.zeros(0, np.int64),
-                weights_rule=s.weights,
-                features_of=phi.__getitem__,
-            )
-            pos = np.asarray(
-                GreedyState(problem, problem.fixed_pos, problem.pool_free).run(m_pilot)
-            )
-            w, own = problem.weigh(phi[pos])
-            phis.append(phi)
-            mus.append(mu)
-            sels.append((pos, w, own))
-        cross = []
-        for r, (pos, w, _) in enumerate(sels):
-            judged = [feature_mmd(phis[q][pos], mus[q], w) for q in range(_AUTO_DRAWS) if q != r]
-            cross.append(float(np.mean(judged)))
-        honest = float(np.mean(cross))
-        own = np.array([v[2] for v in sels])
-        # how far each draw's own estimate is from the other draws' verdict: feature noise
-        # plus the optimiser fitting that noise; small means the estimate is stable
-        gap = float(np.mean(np.abs(np.asarray(cross) - own)) / max(honest, 1e-300))
-        entry = {
-            "n_features": n_feat,
-            "mmd_own": own.tolist(),
-            "mmd_cross": cross,
-            "mmd_cross_mean": honest,
-            "gap": gap,
-            "spread": float((max(cross) - min(cross)) / honest) if honest > 0 else 0.0,
-        }
-        if previous is not None:
-            entry["change"] = float(abs(honest - previous) / max(honest, 1e-300))
-        history.append(entry)
-        if progress is not None:
-            progress(li + 1, len(levels), "auto features")
-        if gap <= s.features_tol and entry.get("change", np.inf) <= s.features_tol:
-            chosen = n_feat
-            break
-        previous = honest
-    return chosen, history
+            if stop:
+                return chosen, history
+    return levels[-1], history
+
+
+def _auto_level(li, n_feat, phis, mus, sels, history, previous, s, levels, progress):
+    """Judge one level of the automatic feature count: append its history entry and
+    return (stop here, D, the level's cross-judged MMD)."""
+    cross = []
+    for r, (pos, w, _) in enumerate(sels):
+        judged = [feature_mmd(phis[q][pos], mus[q], w) for q in range(_AUTO_DRAWS) if q != r]
+        cross.append(float(np.mean(judged)))
+    honest = float(np.mean(cross))
+    own = np.array([v[2] for v in sels])
+    # how far each draw's own estimate is from the other draws' verdict: feature noise
+    # plus the optimiser fitting that noise; small means the estimate is stable
+    gap = float(np.mean(np.abs(np.asarray(cross) - own)) / max(honest, 1e-300))
+    entry = {
+        "n_features": n_feat,
+        "mmd_own": own.tolist(),
+        "mmd_cross": cross,
+        "mmd_cross_mean": honest,
+        "gap": gap,
+        "spread": float((max(cross) - min(cross)) / honest) if honest > 0 else 0.0,
+    }
+    if previous is not None:
+        entry["change"] = float(abs(honest - previous) / max(honest, 1e-300))
+    history.append(entry)
+    if progress is not None:
+        progress(li + 1, len(levels), "auto features")
+    stop = gap <= s.features_tol and entry.get("change", np.inf) <= s.features_tol
+    return stop, n_feat, honest
 
 
 def _run(*args: Any, **kwargs: Any) -> Selection:
