@@ -533,6 +533,7 @@ def _run_one_thread(
         weights_rule=s.weights,
         features_of=features_of,
         coords=prep.standardised(pool),
+        workers=s.workers,
     )
     result = selector.select(problem, m, streams[5], progress)
     ids = result.ids

@@ -304,3 +304,22 @@ def test_neighbours_match_brute_force():
         want = [int(i) for i in np.argsort(dist) if i != pos][:5]
         assert near[pos].tolist() == want
     assert not _Neighbours(None, 5).ok and not _Neighbours(coords[:4], 5).ok
+
+
+def test_matvec_split_across_threads_equals_one_product():
+    # oracle: numpy's single product phi @ v; the split is by rows, each row's dot product
+    # is computed the same way, so the values agree to float32 rounding
+    rng = np.random.default_rng(6)
+    p, f = 5000, 64
+    phi = (rng.standard_normal((p, f)) / 8).astype(np.float32)
+    ids = np.arange(p)
+    base = {"phi": phi, "mu": phi.mean(axis=0).astype(np.float64), "pool": ids,
+            "counts": np.ones(p, np.int64), "inverse": ids, "allowed": np.ones(p, bool),
+            "fixed": np.zeros(0, np.int64), "weights_rule": "simplex",
+            "features_of": phi.__getitem__}  # fmt: skip
+    v = rng.standard_normal(f)
+    one = Problem(**base).matvec(v)
+    two = Problem(**base, workers=2).matvec(v)
+    assert two.dtype == np.float32 and two.shape == (p,)
+    np.testing.assert_allclose(two, phi @ v.astype(np.float32), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(two, one, rtol=1e-5, atol=1e-6)
