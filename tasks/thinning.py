@@ -349,7 +349,13 @@ def _auto_features(
 
     def one_draw(fmap: FeatureMap) -> tuple[np.ndarray, np.ndarray, tuple]:
         phi = features_of_rows(fmap, prep.x, z_rows, chunk_size=_chunk_rows(None, fmap.width))
-        mu = (cnt.astype(np.float64) @ phi) / cnt.sum()
+        # float32 sums over 256 rows, added in float64 (a float64 product would first copy
+        # the whole feature matrix to float64)
+        c32 = cnt.astype(phi.dtype)
+        mu = np.zeros(phi.shape[1])
+        for a in range(0, phi.shape[0], 256):
+            mu += c32[a : a + 256] @ phi[a : a + 256]
+        mu /= cnt.sum()
         problem = Problem(
             phi=phi,
             mu=mu,
