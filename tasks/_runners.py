@@ -33,6 +33,7 @@ from winnow.tasks._decks import STDERR_NAME, STDOUT_NAME
 from winnow.tasks._process import (
     RunOptions,
     _journal,
+    _manifest_digest,
     check_outputs,
     execute_run,
     failed_outcome,
@@ -502,6 +503,7 @@ class BatchRunner(Runner):
         run_dir = Path(spec.run_dir)
         attempts: list[Attempt] = []
         state, message, hashes = "failed", "", {}
+        manifest_before = _manifest_digest(run_dir)
         for number in range(1, options.retries + 2):
             if stop.is_set():
                 state = state if attempts else "not_run"
@@ -514,6 +516,10 @@ class BatchRunner(Runner):
             hashes = {}
             if state == "succeeded":
                 hashes, problem = check_outputs(run_dir, options.outputs, options.check_output)
+                if not problem and manifest_before and _manifest_digest(run_dir) != manifest_before:
+                    # same rule as the local runner: a job that rewrote the folder winnow
+                    # rendered is not trusted
+                    problem = "run folder was rewritten during the run (its manifest changed)"
                 state, message = ("output_missing", problem) if problem else ("succeeded", "")
             else:
                 message = attempt.error or f"exit status {attempt.exit_status}"

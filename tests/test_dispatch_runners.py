@@ -34,6 +34,9 @@ CASES = {
     "no_output": ("output_missing", 2),
     "flaky": ("succeeded", 2),
     "sleep": ("timed_out", 2),
+    # exits 0 with its output but rewrites the folder winnow rendered: not trusted (the
+    # manifest check after a run, the same on every runner)
+    "rewrite_manifest": ("output_missing", 2),
 }
 
 FAKE_SBATCH = """#!/bin/sh
