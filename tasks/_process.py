@@ -383,6 +383,19 @@ def _manifest_digest(run_dir: Path) -> str:
         return ""
 
 
+def check_success(
+    run_dir: Path, options: RunOptions, manifest_before: str
+) -> tuple[dict[str, str], str]:
+    """After an attempt that exited 0: output hashes and the reason not to trust it ("" if
+    none). Declared outputs must be there, and the folder winnow rendered must not have been
+    rewritten (its manifest digest, taken before the first attempt, unchanged). Every runner
+    judges a success through this one function."""
+    hashes, problem = check_outputs(run_dir, options.outputs, options.check_output)
+    if not problem and manifest_before and _manifest_digest(run_dir) != manifest_before:
+        problem = "run folder was rewritten during the run (its manifest changed)"
+    return hashes, problem
+
+
 def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attempt, str]:
     """Run one attempt. Returns the record and the attempt's state."""
     run_dir = Path(spec.run_dir)
@@ -535,9 +548,7 @@ def _run_with_options(spec: RunSpec, options: RunOptions, *, journal: bool = Tru
         attempts.append(attempt)
         hashes = {}
         if state == "succeeded":
-            hashes, problem = check_outputs(run_dir, options.outputs, options.check_output)
-            if not problem and manifest_before and _manifest_digest(run_dir) != manifest_before:
-                problem = "run folder was rewritten during the run (its manifest changed)"
+            hashes, problem = check_success(run_dir, options, manifest_before)
             if problem:
                 state, message = "output_missing", problem
             else:

@@ -34,7 +34,7 @@ from winnow.tasks._process import (
     RunOptions,
     _journal,
     _manifest_digest,
-    check_outputs,
+    check_success,
     execute_run,
     failed_outcome,
     kill_running,
@@ -515,11 +515,7 @@ class BatchRunner(Runner):
             attempts.append(attempt)
             hashes = {}
             if state == "succeeded":
-                hashes, problem = check_outputs(run_dir, options.outputs, options.check_output)
-                if not problem and manifest_before and _manifest_digest(run_dir) != manifest_before:
-                    # same rule as the local runner: a job that rewrote the folder winnow
-                    # rendered is not trusted
-                    problem = "run folder was rewritten during the run (its manifest changed)"
+                hashes, problem = check_success(run_dir, options, manifest_before)
                 state, message = ("output_missing", problem) if problem else ("succeeded", "")
             else:
                 message = attempt.error or f"exit status {attempt.exit_status}"
