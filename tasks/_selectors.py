@@ -447,9 +447,9 @@ class GeneticSelector(Selector):
     fills up from the others (so every child has exactly ``m`` distinct rows), and mutation
     that moves a gene to a nearby row (creep) or brings in a row from the greedy shortlist
     or the whole pool. A child's fitness is its feature-space MMD with the problem's weights
-    (simplex weights solved exactly, their Gram matrix mostly copied from the first parent). Runs for ``generations`` at most,
-    stopping early after ``patience`` generations without a better set. The population
-    reported is the ``keep`` best distinct sets met during the run.
+    (simplex weights solved exactly, their Gram matrix mostly copied from the first parent).
+    Runs for ``generations`` at most, stopping early after ``patience`` generations without a
+    better set. The population reported is the ``keep`` best distinct sets met during the run.
     """
 
     name = "genetic"
@@ -542,6 +542,7 @@ class GeneticSelector(Selector):
         start_mmd = fitness(start)
         history = [start_mmd]
         generations = int(o["generations"]) if can_vary else 0
+        patience = int(o["patience"])
         for gen in range(generations):
             population.sort(key=fitness)
             scores = np.array([fitness(p) for p in population])
@@ -569,7 +570,6 @@ class GeneticSelector(Selector):
                 progress(gen + 1, generations, "genetic")
             # stagnation stop (common practice for genetic algorithms): the elite has not
             # improved for ``patience`` generations
-            patience = int(o["patience"])
             if len(history) > patience and history[-1] >= history[-1 - patience]:
                 break
         # the reported population: the best distinct sets met during the whole run (the

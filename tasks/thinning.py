@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -374,8 +375,6 @@ def _auto_features(
     # the draws of a level are independent: drawn in order from ``rng`` (so the result does
     # not depend on the thread count), then worked on by ``s.workers`` threads (numpy and
     # the trig kernels release the GIL)
-    from concurrent.futures import ThreadPoolExecutor
-
     with ThreadPoolExecutor(max_workers=max(1, min(s.workers, _AUTO_DRAWS))) as pool:
         for li, n_feat in enumerate(levels):
             fmaps = [
@@ -385,17 +384,26 @@ def _auto_features(
                 for _ in range(_AUTO_DRAWS)
             ]
             phis, mus, sels = map(list, zip(*pool.map(one_draw, fmaps), strict=True))
-            stop, chosen, previous = _auto_level(
-                li, n_feat, phis, mus, sels, history, previous, s, levels, progress
-            )
-            if stop:
-                return chosen, history
+            entry = _auto_level_entry(n_feat, phis, mus, sels, previous)
+            history.append(entry)
+            if progress is not None:
+                progress(li + 1, len(levels), "auto features")
+            stable = entry["gap"] <= s.features_tol
+            if stable and entry.get("change", np.inf) <= s.features_tol:
+                return n_feat, history
+            previous = entry["mmd_cross_mean"]
     return levels[-1], history
 
 
-def _auto_level(li, n_feat, phis, mus, sels, history, previous, s, levels, progress):
-    """Judge one level of the automatic feature count: append its history entry and
-    return (stop here, D, the level's cross-judged MMD)."""
+def _auto_level_entry(
+    n_feat: int,
+    phis: list[np.ndarray],
+    mus: list[np.ndarray],
+    sels: list[tuple[np.ndarray, np.ndarray, float]],
+    previous: float | None,
+) -> dict[str, Any]:
+    """History entry of one level of the automatic feature count: each draw's selection
+    judged by its own features and by the other draws'."""
     cross = []
     for r, (pos, w, _) in enumerate(sels):
         judged = [feature_mmd(phis[q][pos], mus[q], w) for q in range(_AUTO_DRAWS) if q != r]
@@ -415,11 +423,7 @@ def _auto_level(li, n_feat, phis, mus, sels, history, previous, s, levels, progr
     }
     if previous is not None:
         entry["change"] = float(abs(honest - previous) / max(honest, 1e-300))
-    history.append(entry)
-    if progress is not None:
-        progress(li + 1, len(levels), "auto features")
-    stop = gap <= s.features_tol and entry.get("change", np.inf) <= s.features_tol
-    return stop, n_feat, honest
+    return entry
 
 
 def _run(*args: Any, **kwargs: Any) -> Selection:
