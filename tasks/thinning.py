@@ -641,7 +641,7 @@ def _settings(
     n_candidates: Any,
     features_tol: Any,
     precision: Any,
-    workers: Any = 2,
+    workers: Any,
     method_options: dict[str, Any],
 ) -> _Settings:
     get_kernel(kernel)
@@ -772,6 +772,7 @@ def thin(
         n_candidates=n_candidates,
         features_tol=features_tol,
         precision=precision,
+        workers=workers,
         method_options=method_options,
     )
     return _run(x, m, s, rng, progress)
