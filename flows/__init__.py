@@ -2,12 +2,16 @@
 
 Importing this package sets two Prefect defaults that users otherwise trip over (an explicit
 environment setting always wins): a longer start-up timeout for the temporary server on slow
-machines, and no telemetry from machines that are offline.
+machines, and no telemetry from machines that are offline. Prefect 3.9 has two switches for
+its anonymous usage data: ``PREFECT_SERVER_ANALYTICS_ENABLED`` (the server's telemetry service)
+and ``DO_NOT_TRACK`` (the client's usage events and the first-run notice it prints on import in
+a terminal, which the server setting does not silence).
 """
 
 import os as _os
 
 _os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "90")
 _os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+_os.environ.setdefault("DO_NOT_TRACK", "1")
 
 __all__: list[str] = []

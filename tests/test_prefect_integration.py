@@ -111,6 +111,83 @@ def test_core_modules_do_not_import_prefect():
 
 
 # --------------------------------------------------------------------------------------------
+# telemetry: no anonymous-usage notice from a winnow run (README: telemetry is off)
+# --------------------------------------------------------------------------------------------
+_TELEMETRY_ENV = ("DO_NOT_TRACK", "PREFECT_SERVER_ANALYTICS_ENABLED", "PREFECT_API_URL")
+# Prefect skips its usage data on CI machines (prefect/_internal/analytics/ci_detection.py)
+_CI_ENV = ("CI", "GITHUB_ACTIONS", "GITLAB_CI", "JENKINS_URL", "TRAVIS", "CIRCLECI", "BUILDKITE",
+           "TF_BUILD", "CODEBUILD_BUILD_ID", "BITBUCKET_COMMIT", "TEAMCITY_VERSION", "DRONE",
+           "SEMAPHORE", "APPVEYOR", "BUDDY", "CI_NAME")  # fmt: skip
+
+
+def _run_in_terminal(argv: list[str], home: Path, cwd: Path, timeout: float = 600.0):
+    """Run ``argv`` with a pseudo-terminal as stdout and stderr, as a user at a shell would
+    (Prefect prints its notice only to a terminal), with a fresh Prefect home and none of the
+    settings that turn telemetry off. Returns (exit status, everything printed)."""
+    import os
+    import pty
+    import select
+    import time
+
+    env = {k: v for k, v in os.environ.items() if k not in _TELEMETRY_ENV + _CI_ENV}
+    env["PREFECT_HOME"] = str(home)
+    leader, follower = pty.openpty()
+    try:
+        proc = subprocess.Popen(
+            argv, stdin=subprocess.DEVNULL, stdout=follower, stderr=follower, env=env, cwd=cwd
+        )
+    finally:
+        os.close(follower)
+    out = bytearray()
+    deadline = time.monotonic() + timeout
+    try:
+        while time.monotonic() < deadline:
+            ready, _, _ = select.select([leader], [], [], 1.0)
+            if not ready:
+                if proc.poll() is not None:
+                    break
+                continue
+            try:
+                chunk = os.read(leader, 65536)
+            except OSError:  # EIO: the child closed the terminal
+                break
+            if not chunk:
+                break
+            out += chunk
+        status = proc.wait(timeout=max(1.0, deadline - time.monotonic()))
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        os.close(leader)
+    return status, out.decode("utf-8", errors="replace")
+
+
+def _has_usage_notice(text: str) -> bool:
+    # Prefect 3.9's NOTICE_TEXT (prefect/_internal/analytics/notice.py)
+    low = text.lower()
+    return "anonymous usage data" in low or "do_not_track" in low
+
+
+@pytest.mark.slow
+def test_winnow_run_prints_no_usage_notice(tmp_path):
+    # control: in the same terminal and environment, Prefect itself prints the notice on a
+    # fresh home, so its absence below is winnow's doing and not the test's setup
+    status, plain = _run_in_terminal(
+        [sys.executable, "-c", "import prefect"], tmp_path / "home-control", tmp_path
+    )
+    assert status == 0, plain
+    assert _has_usage_notice(plain), plain
+    config = make_study(tmp_path / "study")
+    winnow = Path(sys.executable).with_name("winnow")
+    status, out = _run_in_terminal(
+        [str(winnow), "run", str(config)], tmp_path / "home-run", tmp_path
+    )
+    assert status == 0, out
+    assert "r0001" in out  # the study really ran (its revision is printed)
+    assert not _has_usage_notice(out), out
+
+
+# --------------------------------------------------------------------------------------------
 # a user's own flow calling winnow's tasks
 # --------------------------------------------------------------------------------------------
 @pytest.mark.slow
