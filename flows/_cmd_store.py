@@ -255,7 +255,13 @@ def register(app: typer.Typer) -> None:
     @guarded
     def trace_cmd(
         store: Annotated[Path, typer.Argument(help="Run store (HDF5 file).")],
-        point: Annotated[str, typer.Argument(help="Run id, or chain row index.")],
+        point: Annotated[
+            str,
+            typer.Argument(
+                help="Run id (or its start, e.g. p008982, when only one run id starts so), "
+                "or chain row index."
+            ),
+        ],
         revision: Annotated[
             str | None, typer.Option("--revision", "-r", help="Revision (r0002, 2 or latest).")
         ] = None,

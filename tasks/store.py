@@ -757,10 +757,17 @@ def trace(path: str | Path, point: str | int, revision: str | int | None = None)
     Parameters
     ----------
     point : str or int
-        A run id, or a chain row index (int or a string of digits that is not a run id).
+        A run id, or the start of exactly one run id (``p008982`` for ``p008982-1a2b3c4d``),
+        or a chain row index (int or a string of digits that is not a run id).
     revision : str or int, optional
         Revision to look in. By default, for a run id the newest revision that has it, for a
         row index the latest revision.
+
+    Raises
+    ------
+    ValueError
+        ``point`` names no run and no chain row, or starts several run ids of the revision
+        (the message lists them).
     """
     if isinstance(point, bool) or not isinstance(point, str | int | np.integer):
         raise TypeError(f"point must be a run id (str) or a chain row (int), got {point!r}")
@@ -775,19 +782,17 @@ def trace(path: str | Path, point: str | int, revision: str | int | None = None)
             candidates = list(reversed(revs))
         rev, spec, outcome, row = None, None, None, None
         if isinstance(point, str):
-            for c in candidates:
-                if "runs" in r.sections(c):
-                    specs, outcomes = r.read_runs(c)
-                    hit = [s for s in specs if s.run_id == point]
-                    if hit:
-                        rev, spec = c, hit[0]
-                        outcome = next((o for o in outcomes if o.run_id == point), None)
-                        row = int(spec.point_index)
-                        break
+            found = _find_run(r, candidates, point)
+            if found is not None:
+                rev, spec, outcome = found
+                row = int(spec.point_index)
         if rev is None:
             if isinstance(point, str) and not point.strip().isdigit():
                 where = f"revision {candidates[0]}" if revision is not None else "any revision"
-                raise ValueError(f"point {point!r} is neither a run id in {where} nor a row index")
+                raise ValueError(
+                    f"point {point!r} is neither a run id (or the start of one) in {where} "
+                    "nor a row index"
+                )
             row = int(point)
             rev = candidates[0]
             if "runs" in r.sections(rev):
@@ -796,6 +801,47 @@ def trace(path: str | Path, point: str | int, revision: str | int | None = None)
                 if spec is not None:
                     outcome = next((o for o in outcomes if o.run_id == spec.run_id), None)
         return _lineage(r, rev, row, spec, outcome)
+
+
+_MAX_SHOWN = 10  # candidates listed when a run id prefix is ambiguous
+
+
+def _find_run(
+    r: RunStoreReader, revisions: Sequence[str], point: str
+) -> tuple[str, RunSpec, RunOutcome | None] | None:
+    """The run named by ``point`` in the first of ``revisions`` that has it: an exact run id
+    first (in any of them), else an unambiguous prefix of one (tables show ids shortened,
+    e.g. ``p008982``). A prefix that fits several run ids of that revision is refused,
+    naming them."""
+    cache: dict[str, tuple[list[RunSpec], list[RunOutcome]]] = {}
+
+    def runs() -> Iterator[tuple[str, tuple[list[RunSpec], list[RunOutcome]]]]:
+        for rev in revisions:
+            if rev not in cache:
+                cache[rev] = r.read_runs(rev) if "runs" in r.sections(rev) else ([], [])
+            yield rev, cache[rev]
+
+    def outcome_of(outcomes: list[RunOutcome], rid: str) -> RunOutcome | None:
+        return next((o for o in outcomes if o.run_id == rid), None)
+
+    for rev, (specs, outcomes) in runs():
+        hit = next((s for s in specs if s.run_id == point), None)
+        if hit is not None:
+            return rev, hit, outcome_of(outcomes, hit.run_id)
+    if not point or point.strip().isdigit():
+        return None  # digits name a chain row
+    for rev, (specs, outcomes) in runs():
+        hits = [s for s in specs if s.run_id.startswith(point)]
+        if len(hits) == 1:
+            return rev, hits[0], outcome_of(outcomes, hits[0].run_id)
+        if hits:
+            shown = ", ".join(s.run_id for s in hits[:_MAX_SHOWN])
+            more = f" and {len(hits) - _MAX_SHOWN} more" if len(hits) > _MAX_SHOWN else ""
+            raise ValueError(
+                f"point {point!r} is the start of {len(hits)} run ids in revision {rev}: "
+                f"{shown}{more}; give more of the id"
+            )
+    return None
 
 
 def _rev_name(r: RunStoreReader, revision: str | int) -> str:

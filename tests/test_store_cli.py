@@ -245,6 +245,31 @@ def test_trace_by_row_and_reused_origin(two_revisions: tuple[Path, Path]) -> Non
     assert runner.invoke(app, ["trace", str(p), "999"]).exit_code == 2
 
 
+def test_trace_accepts_the_start_of_a_run_id(two_revisions: tuple[Path, Path]) -> None:
+    """Tables show run ids shortened to the point (p000011); trace takes that prefix when
+    exactly one run id of the revision starts with it (issue 17 item 11)."""
+    p, _ = two_revisions
+    res = runner.invoke(app, ["trace", str(p), "p000011", "-r", "1", "--json"])
+    assert res.exit_code == 0, res.output
+    t = json.loads(res.stdout)
+    assert t["revision"] == "r0001" and t["run"]["run_id"] == "p000011-00000001"
+    assert t == json.loads(json.dumps(trace(p, "p000011-00000001", revision=1)))
+    # without -r: the newest revision holding it, as for a whole id
+    assert trace(p, "p00002")["run"]["run_id"] == "p000020-00000002"
+    assert trace(p, "p00002")["revision"] == "r0002"
+    table = runner.invoke(app, ["trace", str(p), "p000020"])
+    assert table.exit_code == 0 and "run p000020-00000002: failed" in table.stdout
+    # every run id of the fixture starts with p0000: refused, naming the candidates
+    amb = runner.invoke(app, ["trace", str(p), "p0000"])
+    assert amb.exit_code == 2 and amb.stdout == ""
+    assert "r0002" in amb.stderr and "3 run ids" in amb.stderr
+    for rid in ("p000004-00000000", "p000011-00000001", "p000020-00000002"):
+        assert rid in amb.stderr
+    none = runner.invoke(app, ["trace", str(p), "p0001"])
+    assert none.exit_code == 2 and "'p0001'" in none.stderr
+    assert trace(p, "11")["chain"]["row"] == 11  # digits still name a chain row
+
+
 def test_diff_between_revisions(two_revisions: tuple[Path, Path]) -> None:
     p, _ = two_revisions
     res = runner.invoke(app, ["diff", str(p), "r0001", "r0002", "--json"])
