@@ -57,6 +57,27 @@ class _Node:
         return _Node(self.tree.add(Text(label)))
 
 
+_TAIL_LINES = 10  # of a failed attempt's stderr shown by trace and status
+
+
+def _tail(text: str) -> list[str]:
+    return text.rstrip().splitlines()[-_TAIL_LINES:]
+
+
+def _log_note(path: str) -> str:
+    return f"full log: {path}" + ("" if Path(path).is_file() else " (not found here)")
+
+
+def _add_stderr(node: _Node, tail: str, log: str | None) -> None:
+    lines = _tail(tail)
+    if lines:
+        err = node.add_(f"stderr, last {len(lines)} line(s):")
+        for line in lines:
+            err.add_(line)
+    if log:
+        node.add_(_log_note(log))
+
+
 def _print_trace(t: dict[str, Any]) -> None:
     from rich.console import Console
     from rich.text import Text
@@ -109,12 +130,14 @@ def _print_trace(t: dict[str, Any]) -> None:
         for d in r["decks"]:
             run.add_(f"deck {d['file']} sha256 {d['sha256']}")
         for a in t["attempts"]:
-            run.add_(
+            node = run.add_(
                 f"attempt {a['number']}: {' '.join(a['argv'])} -> exit "
                 f"{_fmt(a['exit_status'])}{' (timed out)' if a['timed_out'] else ''}, "
                 f"{a['started_utc']} to {a['ended_utc']}"
                 + (f"; error: {a['error']}" if a["error"] else "")
             )
+            if r["state"] != "succeeded" or a["exit_status"] != 0 or a["timed_out"]:
+                _add_stderr(node, a["stderr_tail"], a["stderr_log"])
         origin = t.get("origin")
         if origin:
             o = run.add_(f"origin {origin['ref']}: {'found' if origin['found'] else 'not found'}")
@@ -163,6 +186,34 @@ def _print_status(path: Path, revision: str | None, st: dict[str, Any]) -> None:
                 r["id"], f"[{style}]{r['state']}[/]", str(r["attempts"]), f"{r['seconds']:.1f}"
             )
         console.print(runs)
+    _print_failures(console, st["runs"])
+
+
+_MAX_FAILURES_SHOWN = 20
+
+
+def _print_failures(console: Any, runs: list[dict[str, Any]]) -> None:
+    """Why each run that did not succeed ended so: message, last stderr lines, full log."""
+    failed = [r for r in runs if r["state"] not in ("succeeded", "not_run")]
+    for r in failed[:_MAX_FAILURES_SHOWN]:
+        head = f"{r['id']}: {r['state']}" + (f" ({r['message']})" if r["message"] else "")
+        console.print(head, style="bold", markup=False, highlight=False, soft_wrap=True)
+        lines = _tail(r.get("stderr_tail", ""))
+        if lines:
+            console.print(f"  stderr, last {len(lines)} line(s):", markup=False, soft_wrap=True)
+            for line in lines:
+                console.print(f"    {line}", markup=False, highlight=False, soft_wrap=True)
+        if r.get("stderr_log"):
+            console.print(
+                f"  {_log_note(r['stderr_log'])}", markup=False, highlight=False, soft_wrap=True
+            )
+    if len(failed) > _MAX_FAILURES_SHOWN:
+        console.print(
+            f"... and {len(failed) - _MAX_FAILURES_SHOWN} more run(s) that did not succeed "
+            "(all of them: --json; one: winnow trace STORE RUN)",
+            markup=False,
+            soft_wrap=True,
+        )
 
 
 def _print_diff(d: dict[str, Any]) -> None:

@@ -698,15 +698,41 @@ def _plain(x: Any) -> Any:
     return x
 
 
+# Log files of an attempt in its run folder (DEVELOPERS.md, "Where things are recorded"): the
+# last attempt's streams keep these names, an earlier attempt k's are renamed to
+# winnow-stderr.attempt<k>.txt when the next one starts (tasks/_process.py, _rotate_logs).
+_RUN_LOG_NAMES = {"stdout": "winnow-stdout.txt", "stderr": "winnow-stderr.txt"}
+# Lines of a stored stream tail that status() gives for a run that did not succeed.
+_TAIL_LINES = 10
+
+
+def _log_file(run_dir: str | Path, stream: str, number: int, last: int) -> str:
+    """Path of the full log of attempt ``number`` (of ``last``) in its run folder."""
+    name = _RUN_LOG_NAMES[stream]
+    if number != last:
+        stem, suffix = name.rsplit(".", 1)
+        name = f"{stem}.attempt{number}.{suffix}"
+    return str(Path(run_dir) / name)
+
+
+def _last_lines(text: str, n: int = _TAIL_LINES) -> str:
+    """The last ``n`` lines of a stream tail, trailing blank lines dropped."""
+    return "\n".join(text.rstrip().splitlines()[-n:]) if n > 0 else ""
+
+
 def status(path: str | Path, revision: str | int | None = None) -> dict[str, Any]:
     """Runs of a revision (default: the latest) by state.
 
     Returns
     -------
     dict
-        ``{"counts": {state: n}, "runs": [{"id", "state", "attempts", "seconds"}]}``; counts
-        list every state of :data:`~winnow.tasks.records.RUN_STATES` (zeros included); a run
-        without an outcome counts as ``not_run``.
+        ``{"counts": {state: n}, "runs": [{"id", "state", "attempts", "seconds", "message",
+        "stderr_tail", "stderr_log"}]}``; counts list every state of
+        :data:`~winnow.tasks.records.RUN_STATES` (zeros included); a run without an outcome
+        counts as ``not_run``. For a run that ran and did not succeed, ``stderr_tail`` holds
+        the last 10 lines of its last attempt's stderr as stored and
+        ``stderr_log`` the path of that attempt's full stderr in the run folder; otherwise
+        they are ``""`` and ``None``.
     """
     with RunStore.open_read(path) as r:
         rev = r.latest_revision() if revision is None else revision
@@ -722,18 +748,26 @@ def status(path: str | Path, revision: str | int | None = None) -> dict[str, Any
         o = by_id.get(s.run_id)
         state = o.state if o else "not_run"
         counts[state] = counts.get(state, 0) + 1
+        tail, log = "", None
+        if o is not None and state != "succeeded" and o.attempts:
+            a = o.attempts[-1]
+            tail = _last_lines(a.stderr_tail)
+            log = _log_file(o.run_dir, "stderr", int(a.number), int(a.number))
         runs.append(
             {
                 "id": s.run_id,
                 "state": state,
                 "attempts": len(o.attempts) if o else 0,
                 "seconds": float(o.seconds) if o else 0.0,
+                "message": o.message if o else "",
+                "stderr_tail": tail,
+                "stderr_log": log,
             }
         )
     return {"counts": counts, "runs": runs}
 
 
-def _attempt_dict(a: Any) -> dict[str, Any]:
+def _attempt_dict(a: Any, run_dir: str | Path, last: int) -> dict[str, Any]:
     return {
         "number": int(a.number),
         "argv": list(a.argv),
@@ -747,7 +781,14 @@ def _attempt_dict(a: Any) -> dict[str, Any]:
         "error": a.error,
         "stdout_tail": a.stdout_tail,
         "stderr_tail": a.stderr_tail,
+        "stdout_log": _log_file(run_dir, "stdout", int(a.number), last),
+        "stderr_log": _log_file(run_dir, "stderr", int(a.number), last),
     }
+
+
+def _attempt_dicts(o: RunOutcome) -> list[dict[str, Any]]:
+    last = max((int(a.number) for a in o.attempts), default=0)
+    return [_attempt_dict(a, o.run_dir, last) for a in o.attempts]
 
 
 def trace(path: str | Path, point: str | int, revision: str | int | None = None) -> dict[str, Any]:
@@ -939,7 +980,7 @@ def _lineage(
             "seconds": float(outcome.seconds) if outcome else 0.0,
         }
         if outcome is not None:
-            out["attempts"] = [_attempt_dict(a) for a in outcome.attempts]
+            out["attempts"] = _attempt_dicts(outcome)
             if outcome.reused_from:
                 out["origin"] = _origin(r, outcome.reused_from)
         if "results" in sections:
@@ -976,7 +1017,7 @@ def _origin(r: RunStoreReader, ref: str) -> dict[str, Any]:
             found=True,
             state=o.state,
             run_dir=str(o.run_dir),
-            attempts=[_attempt_dict(a) for a in o.attempts],
+            attempts=_attempt_dicts(o),
         )
     return info
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import sys
 from pathlib import Path
 
 import h5py
@@ -177,14 +178,26 @@ def test_status_json_shape(two_revisions: tuple[Path, Path]) -> None:
         "output_missing": 0,
         "not_run": 0,
     }
-    assert [set(r) for r in st["runs"]] == [{"id", "state", "attempts", "seconds"}] * 3
+    keys = {"id", "state", "attempts", "seconds", "message", "stderr_tail", "stderr_log"}
+    assert [set(r) for r in st["runs"]] == [keys] * 3
     assert st["runs"][0] == {
         "id": "p000004-00000000",
         "state": "succeeded",
         "attempts": 1,
         "seconds": 10.5,
+        "message": "",
+        "stderr_tail": "",
+        "stderr_log": None,
     }
-    assert st["runs"][2]["state"] == "failed" and st["runs"][2]["seconds"] == 30.0
+    assert st["runs"][2] == {
+        "id": "p000020-00000002",
+        "state": "failed",
+        "attempts": 1,
+        "seconds": 30.0,
+        "message": "exit status 3",
+        "stderr_tail": "boom",
+        "stderr_log": "/runs/p000020-00000002/winnow-stderr.txt",
+    }
     assert st == status(p, "r0001")
     latest = json.loads(runner.invoke(app, ["status", str(p), "--json"]).stdout)
     assert latest["runs"][0]["attempts"] == 0  # r0002 reused it
@@ -268,6 +281,89 @@ def test_trace_accepts_the_start_of_a_run_id(two_revisions: tuple[Path, Path]) -
     none = runner.invoke(app, ["trace", str(p), "p0001"])
     assert none.exit_code == 2 and "'p0001'" in none.stderr
     assert trace(p, "11")["chain"]["row"] == 11  # digits still name a chain row
+
+
+@pytest.fixture
+def failed_run_store(tmp_path: Path) -> tuple[Path, Path]:
+    """A store holding one real solver run that failed twice (exit 3), 40 stderr lines each."""
+    from winnow.tasks.dispatch import run_one
+
+    run_dir = tmp_path / "runs" / "p000001-0000abcd"
+    run_dir.mkdir(parents=True)
+    script = (
+        "import os, sys\n"
+        "n = 2 if os.path.exists('winnow-stderr.attempt1.txt') else 1\n"
+        "for i in range(1, 41):\n"
+        "    print(f'attempt {n} line {i}', file=sys.stderr)\n"
+        "sys.exit(3)\n"
+    )
+    argv = (sys.executable, "-c", script)
+    spec = RunSpec("p000001-0000abcd", 1, {"K": 0.5}, 1.0, run_dir, argv, {}, "a" * 64)
+    outcome = run_one(spec, retries=1, timeout=60, journal=False)
+    assert outcome.state == "failed" and len(outcome.attempts) == 2
+    g = np.random.default_rng(0)
+    chain = Chain(
+        g.normal(size=(10, 1)), ("K",), ("m/s",), np.zeros(10, np.int64),
+        np.arange(10, dtype=np.int64), g.normal(size=10), "sampled:metropolis",
+    )  # fmt: skip
+    sel = Selection(
+        np.array([1]), np.array([1.0]), chain.samples[[1]], "greedy", "simplex", "gaussian",
+        0.8, "rff", 16, 1, 0.0, 0.0, 10,
+    )  # fmt: skip
+    store = tmp_path / "study.h5"
+    RunStore.create(store, "failing study")
+    with RunStore.open_for_write(store) as w:
+        rev = w.new_revision("v: 1")
+        w.write_chain(rev, chain)
+        w.write_selection(rev, sel)
+        w.write_runs(rev, [spec], [outcome])
+    return store, run_dir
+
+
+def _lines(text: str) -> list[str]:
+    return [ln.strip() for ln in text.splitlines()]
+
+
+def test_status_and_trace_show_why_a_run_failed(failed_run_store: tuple[Path, Path]) -> None:
+    """A failed run shows its last stderr lines and where the full log is (issue 17 item 4),
+    not only "exit status 3". The expected lines are the ones the solver printed."""
+    store, run_dir = failed_run_store
+    last = [f"attempt 2 line {i}" for i in range(31, 41)]  # the last 10 of 40 lines
+    log2, log1 = run_dir / "winnow-stderr.txt", run_dir / "winnow-stderr.attempt1.txt"
+    # the logs named are the solver's whole streams, as it wrote them
+    assert log2.read_text().splitlines() == [f"attempt 2 line {i}" for i in range(1, 41)]
+    assert log1.read_text().splitlines() == [f"attempt 1 line {i}" for i in range(1, 41)]
+
+    st = json.loads(runner.invoke(app, ["status", str(store), "--json"]).stdout)
+    (run,) = st["runs"]
+    assert run["state"] == "failed" and run["message"] == "exit status 3"
+    assert run["stderr_tail"].splitlines() == last
+    assert run["stderr_log"] == str(log2)
+
+    wide = {"COLUMNS": "400"}  # rich wraps at the terminal width; keep a long path on one line
+    table = runner.invoke(app, ["status", str(store)], env=wide)
+    assert table.exit_code == 0, table.output
+    shown = _lines(table.stdout)
+    assert "p000001-0000abcd: failed (exit status 3)" in shown
+    assert all(line in shown for line in last)
+    assert "attempt 2 line 30" not in table.stdout  # only the last lines
+    assert f"full log: {log2}" in shown
+
+    res = runner.invoke(app, ["trace", str(store), "p000001"], env=wide)
+    assert res.exit_code == 0, res.output
+    text = res.stdout
+    assert f"full log: {log1}" in text and f"full log: {log2}" in text
+    assert "not found here" not in text
+    for n in (1, 2):
+        assert f"attempt {n} line 40" in text and f"attempt {n} line 31" in text
+        assert f"attempt {n} line 30" not in text
+    t = trace(store, "p000001-0000abcd")
+    assert [a["stderr_log"] for a in t["attempts"]] == [str(log1), str(log2)]
+    assert [a["stdout_log"] for a in t["attempts"]] == [
+        str(run_dir / "winnow-stdout.attempt1.txt"),
+        str(run_dir / "winnow-stdout.txt"),
+    ]
+    assert all(Path(a["stdout_log"]).is_file() for a in t["attempts"])
 
 
 def test_diff_between_revisions(two_revisions: tuple[Path, Path]) -> None:
