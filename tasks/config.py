@@ -10,13 +10,14 @@ names the file, the field path and what was expected.
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import math
 import re
 import shlex
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, get_args
 
 import yaml
 from pydantic import (
@@ -614,22 +615,70 @@ class StudyConfig(_Model):
 # --------------------------------------------------------------------------------------------
 # loading
 # --------------------------------------------------------------------------------------------
+def _models_in(annotation: Any) -> list[type[BaseModel]]:
+    """The pydantic models an annotation can hold (through Optional, unions, lists, Annotated)."""
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return [annotation]
+    found: list[type[BaseModel]] = []
+    for arg in get_args(annotation):
+        found.extend(m for m in _models_in(arg) if m not in found)
+    return found
+
+
+def _keys_at(loc: Sequence[Any]) -> list[str]:
+    """Keys the config accepts in the mapping at ``loc`` (aliases as written in YAML)."""
+    models: list[type[BaseModel]] = [StudyConfig]
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        nxt: list[type[BaseModel]] = []
+        for m in models:
+            for name, f in m.model_fields.items():
+                if part in (name, f.alias):
+                    nxt.extend(_models_in(f.annotation))
+        models = nxt
+        if not models:
+            return []
+    keys: list[str] = []
+    for m in models:
+        keys.extend(f.alias or name for name, f in m.model_fields.items())
+    return sorted(set(keys))
+
+
+def _unknown_key_hint(loc: Sequence[Any]) -> str:
+    """A suggestion for a misspelt key ("; did you mean 'units'?"), else the accepted keys."""
+    key = loc[-1] if loc else None
+    if not isinstance(key, str):
+        return ""
+    keys = _keys_at(loc[:-1])
+    if not keys:
+        return ""
+    close = difflib.get_close_matches(key, keys, n=3, cutoff=0.6)
+    if close:
+        return "; did you mean " + " or ".join(repr(k) for k in close) + "?"
+    return f"; expected one of: {', '.join(keys)}"
+
+
 def format_validation_error(exc: ValidationError, source: str) -> str:
-    """One line per problem: ``source: field.path: message (got value)``."""
+    """One line per problem: ``source: field.path: message (got value)``.
+
+    An unknown key gets the closest accepted keys as a suggestion.
+    """
     lines = []
     for err in exc.errors(include_url=False):
-        parts = [str(p) for p in err["loc"]]
+        parts = list(err["loc"])
         # a tagged union adds its tag to the path (runner.dask.dask...); drop the repeat
         parts = [
             p
             for i, p in enumerate(parts)
             if not (i and parts[i - 1] == "runner" and p in _RUNNER_TAGS)
         ]
-        loc = ".".join(parts)
+        loc = ".".join(str(p) for p in parts)
         msg = err["msg"].removeprefix("Value error, ")
         got = err.get("input")
         shown = "" if err["type"] == "missing" or isinstance(got, dict) else f" (got {got!r})"
-        lines.append(f"{source}: {loc or '<top>'}: {msg}{shown}")
+        hint = _unknown_key_hint(parts) if err["type"] == "extra_forbidden" else ""
+        lines.append(f"{source}: {loc or '<top>'}: {msg}{shown}{hint}")
     return "\n".join(lines)
 
 

@@ -64,7 +64,12 @@ BAD = [
     (("budget",), _DELETE, "budget", "Field required"),
     (("store",), _DELETE, "store", "Field required"),
     (("parameters", 0, "prior", "low"), 5.0, "parameters.0.prior", "low must be < high"),
-    (("parameters", 1, "prior"), {"dist": "normal", "mu": 0.0}, "parameters.1.prior", "sigma"),
+    (
+        ("parameters", 1, "prior"),
+        {"dist": "normal", "mu": 0.0},
+        "parameters.1.prior",
+        "sigma",
+    ),
     (("thin", "kernel"), "cosine", "thin.kernel", "'gaussian', 'laplace'"),
     (("thin", "method"), "best", "thin.method", "'greedy', 'swap', 'genetic'"),
     (("thin", "features"), 0, "thin.features", "positive"),
@@ -73,7 +78,12 @@ BAD = [
     (("dispatch", "runner"), {"cloud": 1}, "dispatch.runner", "expected 'local'"),
     (("dispatch", "timeout"), -1, "dispatch.timeout", "greater than 0"),
     (("collect", "quantiles"), [0.5, 1.5], "collect.quantiles", "in (0, 1)"),
-    (("collect", "qoi", 0, "reader"), {"xml": {}}, "collect.qoi.0.reader", "exactly one reader"),
+    (
+        ("collect", "qoi", 0, "reader"),
+        {"xml": {}},
+        "collect.qoi.0.reader",
+        "exactly one reader",
+    ),
     (("sample", "model"), {"forward": "not a path"}, "sample.model.forward", "pattern"),
 ]
 
@@ -147,6 +157,67 @@ def test_run_with_bad_config_exits_2_and_writes_nothing(tmp_path):
     assert result.exit_code == 2
     assert f"{cfg}: budget: Input should be greater than 0" in result.stderr
     assert sorted(os.listdir(tmp_path)) == before
+
+
+def _refused_by_run(tmp_path: Path, data: dict) -> str:
+    """``winnow run`` on ``data`` written as a config: exit 2, nothing written; the message."""
+    data["store"] = str(tmp_path / "study.h5")
+    data["work_dir"] = str(tmp_path / "runs")
+    cfg = tmp_path / "study.yaml"
+    cfg.write_text(yaml.safe_dump(data, sort_keys=False))
+    before = sorted(os.listdir(tmp_path))
+    result = CliRunner().invoke(app, ["run", str(cfg)])
+    assert result.exit_code == 2, result.output
+    assert sorted(os.listdir(tmp_path)) == before
+    assert result.stderr.startswith(f"winnow: error: {cfg}: ")
+    return result.stderr
+
+
+@pytest.mark.parametrize(
+    ("where", "key", "expected"),
+    [
+        ((), "budjet", "budjet: Extra inputs are not permitted (got 1); did you mean 'budget'?"),
+        (
+            ("parameters", 1),
+            "unit",
+            "parameters.1.unit: Extra inputs are not permitted (got 1); did you mean 'units'?",
+        ),
+        (
+            ("sample", "observations", "noise"),
+            "colum",
+            "sample.observations.noise.colum: Extra inputs are not permitted (got 1); "
+            "did you mean 'column'?",
+        ),
+        (
+            ("dispatch", "runner", "dask"),
+            "adress",
+            "dispatch.runner.dask.adress: Extra inputs are not permitted (got 1); "
+            "did you mean 'address'?",
+        ),
+        (  # the key as written in YAML (the alias), not the Python field name copy_files
+            ("dispatch",),
+            "cpy",
+            "dispatch.cpy: Extra inputs are not permitted (got 1); did you mean 'copy'?",
+        ),
+        (  # nothing close: the keys accepted there
+            ("thin",),
+            "colour",
+            "thin.colour: Extra inputs are not permitted (got 1); expected one of: bandwidth, "
+            "feature_map, features, kernel, method, weights",
+        ),
+    ],
+    ids=["top", "parameter", "noise", "dask runner", "alias", "no close key"],
+)
+def test_unknown_key_gets_a_suggestion(tmp_path, where, key, expected):
+    """Issue 17 item 10 (c): difflib.get_close_matches over the keys accepted at that place."""
+    data = demo_data()
+    data["dispatch"]["runner"] = {"dask": {"address": "tcp://127.0.0.1:8786"}}
+    node = data
+    for p in where:
+        node = node[p]
+    node[key] = 1
+    err = _refused_by_run(tmp_path, data)
+    assert expected in err, err
 
 
 # --------------------------------------------------------------------------------------------
