@@ -1,9 +1,12 @@
 """``winnow diagnose``: convergence diagnostics of a chain file.
 
-Reads a ``.npy``, ``.csv`` or HDF5 chain (see :mod:`winnow.tasks.chainfiles`), removes the
-burn-in and prints rank-normalised split R-hat, bulk and tail ESS and Monte Carlo standard
-errors per parameter, as a table or as JSON. Nothing is written. Bad input exits with
-status 2; failed thresholds are reported but the exit status stays 0.
+Reads a ``.npy``, ``.csv`` or HDF5 chain (see :mod:`winnow.tasks.chainfiles`) and prints
+rank-normalised split R-hat, bulk and tail ESS and Monte Carlo standard errors per parameter,
+as a table or as JSON. Every draw is kept by default: a chain file written by another sampler
+has nearly always had its warm-up removed already, and dropping half of it would throw away
+good draws and understate the ESS. ``--burn-in half`` (or a number of draws) drops draws
+from the start of each chain. Nothing is written. Bad input exits with status 2; failed
+thresholds are reported but the exit status stays 0.
 """
 
 from __future__ import annotations
@@ -105,6 +108,12 @@ def _print_table(path: Path, chain: Any) -> None:
         f"tail ESS > {th['ess_tail_min']:g} (Vehtari et al. 2021)",
         highlight=False,
     )
+    if diag.burn_in == 0:
+        console.print(
+            f"all {diag.n_draws} draws of each chain kept (taken as post-warm-up); "
+            "--burn-in half or --burn-in N drops draws from the start of each chain",
+            highlight=False,
+        )
     if diag.passed:
         console.print(Text("all thresholds met", style="green"))
     else:
@@ -138,9 +147,11 @@ def register(app: typer.Typer) -> None:
             str,
             typer.Option(
                 "--burn-in",
-                help="Draws dropped from the start of each chain: a number, 'half' or 'none'.",
+                help="Draws dropped from the start of each chain: a number, 'half' or 'none' "
+                "(default: every draw kept, as a file from another sampler is normally "
+                "post-warm-up already).",
             ),
-        ] = "half",
+        ] = "none",
         chain_column: Annotated[
             str | None, typer.Option("--chain-column", help="CSV column naming each row's chain.")
         ] = None,

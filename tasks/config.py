@@ -269,7 +269,10 @@ class SampleSettings(_Model):
     )
     draws: int = Field(4000, ge=10, description="Draws per chain, burn-in included.")
     burn_in: int | Literal["half"] = Field(
-        "half", description="Draws dropped from the start of each chain, or 'half'."
+        default_factory=lambda data: 0 if data.get("import_chain") is not None else "half",
+        description="Draws dropped from the start of each chain, or 'half'. Default: 'half' "
+        "for the study's own sampler; 0 (every draw kept) for an imported chain, which a "
+        "sampler elsewhere has normally already cleared of its warm-up.",
     )
     checks: CheckSettings = Field(
         default_factory=CheckSettings, description="Convergence thresholds."

@@ -288,14 +288,15 @@ def burn_in_count(n_draws: int, burn_in: BurnIn = "half") -> tuple[int, str]:
     burn_in : "half", "none" or int
         ``"half"`` (default) drops the first ``n_draws // 2`` draws of each chain (Gelman et
         al., Bayesian Data Analysis 3rd ed., Sec. 11.5: "discard the first half"); ``"none"``
-        or 0 keeps everything (for chains already cleaned); an int drops that many.
+        or 0 keeps everything (for chains already cleaned of their warm-up, as chain files
+        from other samplers nearly always are); an int drops that many.
     """
     if isinstance(burn_in, bool):
         raise TypeError(f"burn_in must be 'half', 'none' or an int, got {burn_in!r}")
     if isinstance(burn_in, str):
         rules = {
             "half": (n_draws // 2, f"first half of each chain discarded ({n_draws // 2} draws)"),
-            "none": (0, "no burn-in removed"),
+            "none": (0, f"no burn-in removed: all {n_draws} draws of each chain kept"),
         }
         if burn_in not in rules:
             raise ValueError(f"burn_in must be 'half', 'none' or an int, got {burn_in!r}")
@@ -308,7 +309,7 @@ def burn_in_count(n_draws: int, burn_in: BurnIn = "half") -> tuple[int, str]:
                 f"({n_draws - 1}), got {n}"
             )
         if n == 0:
-            return 0, "no burn-in removed"
+            return 0, f"no burn-in removed: all {n_draws} draws of each chain kept"
         return n, f"first {n} draws of each chain discarded (stated burn-in)"
     raise TypeError(f"burn_in must be 'half', 'none' or an int, got {burn_in!r}")
 
@@ -503,7 +504,7 @@ def diagnose_chain(
     chain: Chain,
     *,
     chains: int | None = None,
-    burn_in: BurnIn = "half",
+    burn_in: BurnIn = "none",
     thresholds: Mapping[str, float] | None = None,
     acceptance: npt.ArrayLike | None = None,
 ) -> Chain:
@@ -514,7 +515,10 @@ def diagnose_chain(
     chain : Chain
     chains : int, optional
         Split a single-chain sample into this many consecutive chains first.
-    burn_in, thresholds, acceptance
+    burn_in : "half", "none" or int
+        See :func:`burn_in_count`. Default ``"none"``, every draw kept: an imported chain
+        has normally had its warm-up removed by the sampler that wrote it.
+    thresholds, acceptance
         As in :func:`diagnose`.
 
     Returns

@@ -1,7 +1,9 @@
 """``winnow diagnose`` (flows/_cmd_diagnose.py) and the trace/pair plots (tasks/_plots.py).
 
 The numbers printed are those of tasks/diagnostics.py, which test_sample_diagnostics.py
-checks against arviz; here the command is checked against the library call on the same file.
+checks against arviz; here the command is checked against the library call on the same file,
+and on arviz's example posterior ``centered_eight`` (shipped inside the arviz package) against
+``arviz.rhat(method="rank")`` and ``arviz.ess(method="bulk"/"tail")`` directly.
 """
 
 from __future__ import annotations
@@ -29,18 +31,83 @@ def draws():
 
 
 def test_json_matches_library(tmp_path, draws):
+    # default: a chain file is taken as post-warm-up, every draw kept (issue 13)
     p = tmp_path / "c.npy"
     np.save(p, draws)
     res = runner.invoke(app, ["diagnose", str(p), "--json"])
     assert res.exit_code == 0, res.output
     out = json.loads(res.stdout)
-    ref = D.diagnose(draws, ["x0", "x1"])
-    assert out["chains"] == 4 and out["draws"] == 200
+    ref = D.diagnose(draws, ["x0", "x1"], burn_in="none")
+    assert out["chains"] == 4 and out["draws"] == 400 and out["burn_in"] == 0
+    assert out["burn_in_rule"] == "no burn-in removed: all 400 draws of each chain kept"
     for name in ("x0", "x1"):
         r = ref.parameters[name]
         got = out["parameters"][name]
         for key in ("rhat", "ess_bulk", "ess_tail", "mcse_mean", "mean", "sd"):
             assert got[key] == pytest.approx(getattr(r, key), rel=1e-12)
+
+
+def test_burn_in_half_drops_the_first_half(tmp_path, draws):
+    p = tmp_path / "c.npy"
+    np.save(p, draws)
+    res = runner.invoke(app, ["diagnose", str(p), "--json", "--burn-in", "half"])
+    assert res.exit_code == 0, res.output
+    out = json.loads(res.stdout)
+    ref = D.diagnose(draws, ["x0", "x1"], burn_in="half")
+    assert out["draws"] == 200 and out["burn_in"] == 200
+    assert out["burn_in_rule"] == "first half of each chain discarded (200 draws)"
+    for name in ("x0", "x1"):
+        for key in ("rhat", "ess_bulk", "ess_tail"):
+            got = out["parameters"][name][key]
+            assert got == pytest.approx(getattr(ref.parameters[name], key), rel=1e-12)
+    table = runner.invoke(app, ["diagnose", str(p), "--burn-in", "half"])
+    assert "burn-in: first half of each chain discarded (200 draws)" in table.stdout
+    assert "draws of each chain kept" not in table.stdout
+
+
+def _arviz():
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # arviz prints a FutureWarning about its refactor
+        import arviz as az
+    return az
+
+
+@pytest.mark.parametrize("burn_in", [None, "half"])
+def test_centered_eight_file_against_arviz(tmp_path, burn_in):
+    # arviz's example posterior (PyMC, 4 chains x 500 post-warm-up draws) written as a chain
+    # file: the default keeps all 500 draws, --burn-in half the last 250; each time the
+    # printed R-hat and ESS are arviz's on the same draws (az.rhat(method="rank"),
+    # az.ess(method="bulk"/"tail"), Vehtari et al. 2021), to relative 1e-9 (the same
+    # formulas summed in another order; see test_sample_diagnostics.py).
+    az = _arviz()
+    post = az.load_arviz_data("centered_eight").posterior
+    x = np.stack([post["mu"].values, post["tau"].values], axis=-1)  # (4, 500, 2)
+    p = tmp_path / "eight.npy"
+    np.save(p, x)
+    args = ["diagnose", str(p), "--json"] + ([] if burn_in is None else ["--burn-in", burn_in])
+    res = runner.invoke(app, args)
+    assert res.exit_code == 0, res.output
+    out = json.loads(res.stdout)
+    kept = x if burn_in is None else x[:, 250:]
+    assert out["draws"] == kept.shape[1] and out["burn_in"] == 500 - kept.shape[1]
+    for j, name in enumerate(("x0", "x1")):
+        got = out["parameters"][name]
+        xj = kept[..., j]
+        rel = 1e-9
+        assert got["rhat"] == pytest.approx(float(np.asarray(az.rhat(xj, method="rank"))), rel=rel)
+        for kind in ("bulk", "tail"):
+            ref = float(np.asarray(az.ess(xj, method=kind)))
+            assert got[f"ess_{kind}"] == pytest.approx(ref, rel=rel)
+    # the table says which draws were used
+    table = runner.invoke(app, [a for a in args if a != "--json"])
+    assert table.exit_code == 0, table.output
+    if burn_in is None:
+        assert "all 500 draws of each chain kept (taken as post-warm-up)" in table.stdout
+        assert "--burn-in half" in table.stdout
+    else:
+        assert "first half of each chain discarded (250 draws)" in table.stdout
 
 
 def test_chains_option_and_burn_in(tmp_path, draws):

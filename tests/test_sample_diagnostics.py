@@ -9,6 +9,11 @@ Outside references:
   (1 + phi) / (1 - phi) (closed form; e.g. Geyer 1992, Statistical Science 7(4), Sec. 3),
   so ESS = N (1 - phi) / (1 + phi).
 * iid normal draws: MCSE of the mean is sd / sqrt(N) (closed form).
+* arviz's example posteriors ``centered_eight`` and ``non_centered_eight`` (the eight schools
+  model of Gelman et al., Bayesian Data Analysis, sampled by PyMC 4.2; shipped inside the
+  arviz package, loaded offline by ``arviz.load_arviz_data``): the same arviz functions on
+  published draws; arviz describes the centred one as "a model that NUTS has trouble
+  fitting".
 """
 
 from __future__ import annotations
@@ -116,7 +121,11 @@ def test_constant_parameter_gives_undefined_rhat_and_fails():
 
 def test_burn_in_rules():
     assert D.burn_in_count(1001) == (500, "first half of each chain discarded (500 draws)")
-    assert D.burn_in_count(100, "none") == (0, "no burn-in removed")
+    assert D.burn_in_count(100, "none") == (
+        0,
+        "no burn-in removed: all 100 draws of each chain kept",
+    )
+    assert D.burn_in_count(100, 0) == D.burn_in_count(100, "none")
     assert D.burn_in_count(100, 30)[0] == 30
     with pytest.raises(ValueError, match="between 0 and"):
         D.burn_in_count(100, 100)
@@ -165,6 +174,10 @@ def test_diagnose_chain_splits_and_removes_burn_in():
         draw_index=np.arange(400, dtype=np.int64),
         source="imported:x",
     )
+    # an imported chain keeps every draw unless told otherwise (issue 13)
+    whole = D.diagnose_chain(chain, chains=4)
+    assert whole.diagnostics.burn_in == 0 and whole.diagnostics.n_draws == 100
+    np.testing.assert_array_equal(whole.samples, rows)  # chain k: rows 100k .. 100k+99
     out = D.diagnose_chain(chain, chains=4, burn_in=10)
     assert out.diagnostics.n_chains == 4 and out.diagnostics.n_draws == 90
     # chain k holds rows 100k .. 100k+99; after burn-in rows 100k+10 .. 100k+99
@@ -174,3 +187,48 @@ def test_diagnose_chain_splits_and_removes_burn_in():
     ref = D.diagnose(rows.reshape(4, 100, 2), ["a", "b"], burn_in=10)
     assert out.diagnostics.parameters == ref.parameters
     assert out.units == ("m", "s")
+
+
+# --------------------------------------------------------------------------------------------
+# published example posteriors shipped with arviz
+# --------------------------------------------------------------------------------------------
+def eight_schools(name: str) -> tuple[np.ndarray, list[str]]:
+    """(4, 500, 10) draws of mu, tau and theta[school] of an arviz example posterior."""
+    post = az.load_arviz_data(name).posterior  # a file inside the arviz package: offline
+    schools = [str(s) for s in post["school"].values]
+    cols = [post["mu"].values, post["tau"].values]
+    cols += [post["theta"].values[..., k] for k in range(len(schools))]
+    return np.stack(cols, axis=-1), ["mu", "tau", *[f"theta[{s}]" for s in schools]]
+
+
+@pytest.mark.parametrize("name", ["centered_eight", "non_centered_eight"])
+def test_eight_schools_against_arviz(name):
+    # arviz: az.rhat(method="rank") (max of bulk and folded split R-hat, Vehtari et al. 2021
+    # Sec. 4.1-4.2), az.ess(method="bulk"/"tail") (Sec. 4.3), az.mcse(method="mean"); all
+    # draws, as the chain files are post-warm-up. The same formulas in a different order of
+    # summation: relative 1e-9 (1e-13 seen) leaves room for the autocorrelation sums.
+    x, names = eight_schools(name)
+    rel = 1e-9
+    r, eb, et, mm = D.rhat(x), D.ess_bulk(x), D.ess_tail(x), D.mcse_mean(x)
+    for j, label in enumerate(names):
+        xj = x[..., j]
+        assert r[j] == pytest.approx(_one(az.rhat(xj, method="rank")), rel=rel), label
+        assert eb[j] == pytest.approx(_one(az.ess(xj, method="bulk")), rel=rel), label
+        assert et[j] == pytest.approx(_one(az.ess(xj, method="tail")), rel=rel), label
+        assert mm[j] == pytest.approx(_one(az.mcse(xj, method="mean")), rel=rel), label
+
+
+def test_eight_schools_verdicts():
+    # The centred parameterisation is arviz's example of a hard posterior: tau fails the
+    # default thresholds (arviz: R-hat 1.06, bulk ESS 67, tail ESS 38 on these draws); the
+    # non-centred one passes them all.
+    x, names = eight_schools("centered_eight")
+    bad = D.diagnose(x, names, burn_in="none")
+    assert not bad.passed
+    tau = [m for m in bad.messages if m.startswith("tau: ")]
+    assert any("R-hat" in m and "threshold 1.01" in m for m in tau), bad.messages
+    assert any("bulk ESS" in m and "threshold 400" in m for m in tau), bad.messages
+    x, names = eight_schools("non_centered_eight")
+    good = D.diagnose(x, names, burn_in="none")
+    assert good.passed, good.messages
+    assert good.burn_in == 0 and good.n_draws == 500
