@@ -18,7 +18,7 @@ from typing import Any, ClassVar
 from prefect.blocks.core import Block
 from pydantic import Field
 
-from winnow.tasks.config import StudyConfig, load_config
+from winnow.tasks.config import DispatchSettings, StudyConfig, load_config
 
 __all__ = ["LOGO_FILE", "RunStoreLocation", "SolverSettings", "expand_blocks", "load_study"]
 
@@ -29,10 +29,21 @@ _DOCS = "https://pypi.org/project/winnow/"
 LOGO_FILE = Path(__file__).with_name("assets") / "winnow-logo.png"
 
 
+_DISPATCH = DispatchSettings.model_fields
+
+
+def _default(name: str) -> Any:
+    """The ``dispatch`` section's default for a field, so the block cannot drift from it."""
+    return _DISPATCH[name].default
+
+
 class SolverSettings(Block):
     """Settings of a costly solver: templates, command, runner and limits.
 
-    Holds the same fields as the ``dispatch`` section of a study config.
+    Holds the same fields as the ``dispatch`` section of a study config
+    (:class:`~winnow.tasks.config.DispatchSettings`; a test checks the two agree), with
+    ``copy_files``/``link_files`` for its ``copy``/``link``. :meth:`as_config` gives every
+    field back under the section's own keys.
     """
 
     _block_type_name: ClassVar[str] = "winnow solver"
@@ -49,6 +60,8 @@ class SolverSettings(Block):
     dispatch_section = solver.as_config()
     """
 
+    # Required here, unlike in a config (default "."): a saved solver is used by studies in
+    # many folders, and "next to whichever config names the block" is never what is meant.
     template_dir: str = Field(
         description="Folder of the deck templates and of the files to copy or link (an "
         "absolute path, or relative to the study config)."
@@ -70,41 +83,41 @@ class SolverSettings(Block):
     constants: dict[str, Any] = Field(
         default_factory=dict, description="User constants available in the templates."
     )
+    formats: dict[str, str] = Field(
+        default_factory=dict,
+        description="Format spec per parameter for fixed-width decks, e.g. {'log10_T': "
+        "'.6e'}; shortest round-trip text by default.",
+    )
     env: dict[str, str] = Field(
         default_factory=dict, description="Extra environment variables for the solver."
     )
     outputs: list[str] = Field(
         default_factory=list, description="Output files a successful run must leave."
     )
-    timeout: float = Field(3600.0, gt=0, description="Wall-time limit of one attempt, in s.")
-    retries: int = Field(0, ge=0, description="Extra attempts after a failed one.")
-    retry_delay: float = Field(0.0, ge=0, description="Pause before a retry, in s.")
-    concurrency: int = Field(2, ge=1, description="Runs at the same time.")
+    timeout: float = Field(
+        _default("timeout"), gt=0, description="Wall-time limit of one attempt, in s."
+    )
+    retries: int = Field(
+        _default("retries"), ge=0, description="Extra attempts after a failed one."
+    )
+    retry_delay: float = Field(
+        _default("retry_delay"), ge=0, description="Pause before a retry, in s."
+    )
+    concurrency: int = Field(_default("concurrency"), ge=1, description="Runs at the same time.")
     runner: Any = Field(
-        "local",
+        _default("runner"),
         description="Where runs go: 'local', {dask: {address | local_cluster}} or "
         "{batch: {submit, template, directives, poll_interval, max_wait, cancel}}.",
     )
 
     def as_config(self) -> dict[str, Any]:
-        """The block as a ``dispatch`` config section (validated with the study config)."""
-        data = self.model_dump(
-            include={
-                "templates",
-                "command",
-                "env",
-                "outputs",
-                "timeout",
-                "retries",
-                "retry_delay",
-                "concurrency",
-                "runner",
-                "constants",
-            }
-        )
-        data["copy"] = list(self.copy_files)
-        data["link"] = list(self.link_files)
-        return data
+        """The block as a ``dispatch`` config section (validated with the study config).
+
+        Every field of :class:`~winnow.tasks.config.DispatchSettings` is given, under the key
+        a config file uses for it (``copy``, ``link``).
+        """
+        data = self.model_dump(include=set(_DISPATCH))
+        return {(_DISPATCH[name].alias or name): data[name] for name in _DISPATCH}
 
 
 class RunStoreLocation(Block):

@@ -87,9 +87,100 @@ def test_saved_blocks_expand_into_a_config(prefect_harness):
     out = expand_blocks({"dispatch": {"block": "cluster-fem"}, "store": {"block": "team"}})
     assert out["store"] == "/data/study.h5" and out["work_dir"] == "/data/runs"
     assert out["dispatch"]["command"] == ["fem", "{deck}"]
+    assert out["dispatch"]["template_dir"] == "/opt/solver/templates"
     assert out["dispatch"]["runner"] == {"dask": {"address": "tcp://127.0.0.1:8786"}}
     with pytest.raises(ValueError, match="no saved winnow-solver block named 'nope'"):
         expand_blocks({"dispatch": {"block": "nope"}}, source="s.yaml")
+
+
+# One value per dispatch setting, none of them the setting's default: a block holding them
+# must hand every one back (issue 13 item 4: template_dir and formats were lost).
+_EVERY_DISPATCH_SETTING = {
+    "template_dir": "/opt/solver/templates",
+    "templates": ["model.inp.j2"],
+    "copy_files": ["mesh.msh"],
+    "link_files": ["big_table.dat"],
+    "constants": {"t_end": 86400.0},
+    "formats": {"log10_T": ".6e"},
+    "command": ["fem", "{deck}"],
+    "env": {"OMP_NUM_THREADS": "1"},
+    "outputs": ["result.json"],
+    "timeout": 7200.0,
+    "retries": 2,
+    "retry_delay": 5.0,
+    "concurrency": 4,
+    "runner": {"batch": {"submit": ["qsub"], "directives": ["-l walltime=04:00:00"]}},
+}
+
+
+def test_solver_block_carries_every_dispatch_setting():
+    """The block's fields are the dispatch section's (DispatchSettings in tasks/config.py):
+    a field added to one and not the other fails here, and as_config() gives each back."""
+    from winnow.tasks.config import DispatchSettings
+
+    settings_fields = DispatchSettings.model_fields
+    assert set(SolverSettings.model_fields) == set(settings_fields)
+    assert set(_EVERY_DISPATCH_SETTING) == set(settings_fields)  # the sample covers them all
+    for name, f in SolverSettings.model_fields.items():
+        theirs = settings_fields[name]
+        assert f.description, name
+        if name == "template_dir":  # required in a block on purpose (see flows/blocks.py)
+            assert f.is_required() and not theirs.is_required()
+            continue
+        assert f.is_required() == theirs.is_required(), name
+        if not f.is_required():
+            assert f.get_default(call_default_factory=True) == theirs.get_default(
+                call_default_factory=True, validated_data={}
+            ), name
+
+    section = SolverSettings(**_EVERY_DISPATCH_SETTING).as_config()
+    assert set(section) == {f.alias or n for n, f in settings_fields.items()}  # copy, link
+    parsed = DispatchSettings.model_validate(section)
+    default = DispatchSettings(templates=["x.j2"], command=["x"])
+    for name, value in _EVERY_DISPATCH_SETTING.items():
+        got = getattr(parsed, name)
+        if name == "runner":
+            got = got.model_dump(include={"batch": {"submit", "directives"}})
+        assert got == value, name
+        assert getattr(default, name) != getattr(parsed, name), name  # not a default
+
+
+@pytest.mark.slow
+def test_study_naming_a_saved_solver_block_uses_its_templates_and_formats(
+    prefect_harness, tmp_path
+):
+    """A config with ``dispatch: {block: NAME}`` renders from the block's template_dir (no
+    templates next to the config) with the block's number formats (issue 13 item 4)."""
+    from typer.testing import CliRunner
+
+    from winnow.flows.cli import app
+
+    here = Path(__file__).parent / "study_models"
+    templates = tmp_path / "solver-templates"
+    templates.mkdir()
+    shutil.copy(here / "line.deck.j2", templates / "line.deck.j2")
+    SolverSettings(
+        template_dir=str(templates),
+        templates=["line.deck.j2"],
+        command=["{python}", str(here / "tiny_solver.py"), "{deck}"],
+        formats={"a": ".4e", "b": "+.3f"},
+        outputs=["result.json"],
+        timeout=60,
+    ).save("line-test-solver", overwrite=True)
+    folder = tmp_path / "study"
+    config = make_study(folder, **{"dispatch": {"block": "line-test-solver"}})
+    assert not (folder / "line.deck.j2").exists()  # nothing to find next to the config
+    res = CliRunner().invoke(app, ["run", str(config)])
+    assert res.exit_code == 0, (res.output, res.exception)
+    with RunStore.open_read(folder / "study.h5") as store:
+        specs, outcomes = store.read_runs()
+    assert [o.state for o in outcomes] == ["succeeded"] * 4
+    for spec in specs:
+        a, b = spec.params["a"], spec.params["b"]
+        deck = (spec.run_dir / "line.deck").read_text()
+        # Python's format mini-language is the reference for the two specs
+        assert deck == f"a = {format(a, '.4e')}\nb = {format(b, '+.3f')}\n", deck
+        assert deck != f"a = {a!r}\nb = {b!r}\n"  # not the default shortest round trip
 
 
 # --------------------------------------------------------------------------------------------
