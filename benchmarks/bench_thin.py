@@ -69,15 +69,16 @@ def correlated20(n, rng):
     return z * units + units
 
 
-def metropolis(n, rng):
+def metropolis(n, rng, step=1.2):
     # random-walk Metropolis on a 4-D banana-shaped density; rejections repeat rows
+    # (acceptance about 33 % at step 1.2, about 25 % at step 1.45)
     def logp(x):
         return -0.5 * (x[0] ** 2 + (x[1] + 0.5 * x[0] ** 2 - 0.5) ** 2 + x[2] ** 2 / 4 + x[3] ** 2)
 
     x = np.zeros(4)
     lp = logp(x)
     out = np.empty((n, 4))
-    steps = rng.standard_normal((n, 4)) * 1.2
+    steps = rng.standard_normal((n, 4)) * step
     u = np.log(rng.random(n))
     for i in range(n):
         prop = x + steps[i]
@@ -125,6 +126,98 @@ def exact_greedy(z_pool, a_pool, m, kern, bw):
     return np.array(chosen), w
 
 
+def exact_herding(k_pp, a_pool, m):
+    """Kernel herding without repeats with the exact kernel on a pool, equal weights (Chen,
+    Welling & Smola 2010; Riabiz et al. 2022, Algorithm 1): the plain greedy reference."""
+    q = np.diag(k_pp)
+    c = np.zeros(len(a_pool))
+    avail = np.ones(len(a_pool), bool)
+    chosen = []
+    for t in range(m):
+        cost = np.where(avail, 2 * c - 2 * (t + 1) * a_pool + q, np.inf)
+        j = int(np.argmin(cost))
+        chosen.append(j)
+        avail[j] = False
+        c += k_pp[:, j]
+    return np.array(chosen), np.full(m, 1.0 / m)
+
+
+def exact_pools(uniq, counts, kern, bw, rng, n_pools, size=3000):
+    """Random pools of distinct rows (drawn in proportion to multiplicity, like thin()'s own
+    pool) with their exact kernel mean embedding over the whole chain."""
+    pools = []
+    for _ in range(n_pools):
+        keys = np.log(rng.random(len(uniq))) / counts
+        pool = np.argsort(-keys)[: min(size, len(uniq))]
+        a_pool = np.zeros(len(pool))
+        for s in range(0, len(uniq), 2000):
+            a_pool += (counts[s : s + 2000] / counts.sum()) @ kern.gram(
+                uniq[s : s + 2000], uniq[pool], bw
+            )
+        pools.append((pool, a_pool))
+    return pools
+
+
+# ------------------------------------------------------------------------- repeated rows
+REPEAT_MS = (5, 10, 30)
+
+
+def repeats(quick: bool) -> dict:
+    """Random-walk Metropolis chains with about 25 % acceptance (each value repeated about
+    four times on average) thinned to 5, 10 and 30 points, against exact-kernel greedy
+    references on random pools of 3000 distinct rows (mean of 5 pools per chain): plain
+    kernel herding with equal weights, and the fully corrective greedy with optimal weights
+    (the yardstick of the quality table). Mean over independent chains."""
+    n = 5000 if quick else 20000
+    n_chains = 1 if quick else 3
+    gen_opts = {"population": 12, "generations": 10} if quick else {}
+    kern = get_kernel("gaussian")
+    acc: dict[int, dict[str, list]] = {m: {} for m in REPEAT_MS}
+    print(f"\n== repeated rows: random-walk Metropolis 4-D, step 1.45, N={n}, "
+          f"{n_chains} chain(s)", flush=True)  # fmt: skip
+    for c in range(n_chains):
+        rng = np.random.default_rng(500 + c)
+        x = metropolis(n, rng, step=1.45)
+        accept = float(np.mean(np.any(np.diff(x, axis=0) != 0, axis=1)))
+        mean, sd = x.mean(0), x.std(0)
+        z = (x - mean) / sd
+        uniq, counts = np.unique(z, axis=0, return_counts=True)
+        bw, _ = median_heuristic(z, rng=rng)
+        exact = ExactMMD(uniq, counts.astype(float), kern, bw, precision="double")
+        pools = exact_pools(uniq, counts, kern, bw, rng, YARD_POOLS)
+        grams = [kern.gram(uniq[p], uniq[p], bw) for p, _ in pools]
+        print(f"   chain {c}: acceptance {accept:.3f}, distinct {len(uniq)} "
+              f"(mean multiplicity {n / len(uniq):.2f}), bandwidth {bw:.3g}", flush=True)  # fmt: skip
+        for m in REPEAT_MS:
+            row = acc[m]
+            herd, corr = [], []
+            for (pool, a_pool), k_pp in zip(pools, grams, strict=True):
+                ids, w = exact_herding(k_pp, a_pool, m)
+                herd.append(exact(uniq[pool][ids], w))
+                ids, w = exact_greedy(uniq[pool], a_pool, m, kern, bw)
+                corr.append(exact(uniq[pool][ids], w))
+            row.setdefault("herding", []).append(float(np.mean(herd)))
+            row.setdefault("corrective", []).append(float(np.mean(corr)))
+            for meth in ("greedy", "swap", "genetic"):
+                opts = gen_opts if meth == "genetic" else {}
+                sel = thin(x, m, method=meth, rng=1, bandwidth=bw, exact_max_rows=0, **opts)
+                row.setdefault(meth, []).append(exact((sel.points - mean) / sd, sel.weights))
+                if meth == "greedy":
+                    row.setdefault("rule", []).append(
+                        sel.report["selector"].get("greedy_rule", "corrective")
+                    )
+    print(f"   {'m':>3s} {'greedy':>10s} {'swap':>10s} {'genetic':>10s} {'herding ref':>12s} "
+          f"{'corrective':>11s} {'greedy/herding':>15s} {'greedy/corr.':>13s}  rule kept")  # fmt: skip
+    for m, row in acc.items():
+        g, h, k = (float(np.mean(row[key])) for key in ("greedy", "herding", "corrective"))
+        per = "/".join(f"{a / b:.2f}" for a, b in zip(row["greedy"], row["herding"], strict=True))
+        print(f"   {m:3d} {g:10.3e} {np.mean(row['swap']):10.3e} {np.mean(row['genetic']):10.3e} "
+              f"{h:12.3e} {k:11.3e} {g / h:15.2f} {g / k:13.2f}  {','.join(row['rule'])} "
+              f"(per chain greedy/herding {per})")  # fmt: skip
+    sys.stdout.flush()
+    return {m: {k: v for k, v in row.items()} for m, row in acc.items()}
+
+
 # --------------------------------------------------------------------------------- quality
 def quality(quick: bool) -> dict:
     n = 5000 if quick else 20000
@@ -146,16 +239,7 @@ def quality(quick: bool) -> dict:
         t_self = time.perf_counter() - t0
         # yardstick pools: 3000 distinct rows drawn in proportion to multiplicity (5 draws:
         # the pool draw alone moves the yardstick by about +-25 %), exact embedding
-        pools = []
-        for _ in range(YARD_POOLS):
-            keys = np.log(rng.random(len(uniq))) / counts
-            pool = np.argsort(-keys)[: min(3000, len(uniq))]
-            a_pool = np.zeros(len(pool))
-            for s in range(0, len(uniq), 2000):
-                a_pool += (counts[s : s + 2000] / counts.sum()) @ kern.gram(
-                    uniq[s : s + 2000], uniq[pool], bw
-                )
-            pools.append((pool, a_pool))
+        pools = exact_pools(uniq, counts, kern, bw, rng, YARD_POOLS)
         print(f"\n== {name}: N={n}, d={x.shape[1]}, distinct={len(uniq)}, "
               f"bandwidth={bw:.3g} (self term {t_self:.1f} s)", flush=True)  # fmt: skip
         common = {"bandwidth": bw, "exact_max_rows": 0}
@@ -265,6 +349,8 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="small chains, m in {10, 30}")
     ap.add_argument("--speed-child", type=int, default=0, help=argparse.SUPPRESS)
     ap.add_argument("--skip-quality", action="store_true")
+    ap.add_argument("--repeats-only", action="store_true",
+                    help="only the repeated-rows chains (budgets 5, 10, 30)")  # fmt: skip
     args = ap.parse_args()
     if args.speed_child:
         speed_child(args.speed_child)
@@ -272,6 +358,10 @@ def main() -> None:
     t_all = time.perf_counter()
     print(f"bench_thin ({'quick' if args.quick else 'full'}); BLAS threads "
           f"{os.environ.get('OPENBLAS_NUM_THREADS')}; shared machine: times are noisy")  # fmt: skip
+    repeats(args.quick)
+    if args.repeats_only:
+        print(f"\ntotal benchmark time {time.perf_counter() - t_all:.0f} s")
+        return
     q = {} if args.skip_quality else quality(args.quick)
     sp = speed(args.quick)
     print("\n== speed")
