@@ -43,6 +43,14 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from winnow.tasks._headline import (
+    LEVEL,
+    component_headline,
+    forecast,
+    probability_interval,
+    quantile_interval,
+)
+from winnow.tasks._uncertainty import ChainGeometry
 from winnow.tasks.records import QoIEstimate, QoIValue
 
 __all__ = [
@@ -408,7 +416,11 @@ def estimate_qoi(
     chain_weights: npt.ArrayLike | None = None,
     chain_index: npt.ArrayLike | None = None,
     resolve_weights: ResolveWeights | None = None,
-    bootstrap: int = 1000,
+    bootstrap: int = 0,
+    points: npt.ArrayLike | None = None,
+    geometry: ChainGeometry | None = None,
+    level: float = LEVEL,
+    forecast: bool = True,
     rng: int | np.random.Generator | None = None,
 ) -> QoIEstimate:
     """Weighted estimate of one QoI with its uncertainty broken down by source.
@@ -444,7 +456,17 @@ def estimate_qoi(
         called when some runs are left out, to re-solve the weights of the survivors.
         Without it the surviving weights are renormalised (said in ``details``).
     bootstrap : int
-        Number of bootstrap resamples for ``bootstrap_se`` (0 switches it off).
+        Resamples of the i.i.d. pairs bootstrap, kept in ``details`` for comparison only (it
+        overstates the error of optimised points by orders of magnitude); 0 switches it off.
+    points : array_like, shape (m, d), optional
+        The chosen points in the chain's coordinates (selection order). With ``geometry``
+        (or built from ``chain_samples`` by the caller) it enables the error model.
+    geometry : ChainGeometry, optional
+        The chain as the error model sees it (:class:`winnow.tasks._uncertainty.ChainGeometry`).
+    level : float
+        Level of every stated interval (default 0.95).
+    forecast : bool
+        Also state the expected thinning error with 5, 10, 20 and 50 more points.
     rng : int or numpy.random.Generator, optional
         Seed or generator of the bootstrap.
 
@@ -498,15 +520,38 @@ def estimate_qoi(
             raise ValueError(f"cheap_on_points: expected shape {(m,) + shape}, got {cp.shape}")
         if cc.ndim < 1 or cc.shape[1:] != shape or cc.shape[0] < 1:
             raise ValueError(f"cheap_on_chain: expected shape (n,) + {shape}, got {cc.shape}")
-        if not (np.all(np.isfinite(cp)) and np.all(np.isfinite(cc))):
-            raise ValueError("cheap_on_points, cheap_on_chain: expected finite values")
+    if not isinstance(level, float | int) or not 0.5 <= float(level) < 1.0:
+        raise ValueError(f"level: expected a probability in [0.5, 1), got {level!r}")
+    level = float(level)
 
     details: dict[str, Any] = {
         "quantile_definition": "weighted Hazen: linear interpolation between midpoints of the "
         "weighted empirical CDF steps (Hyndman & Fan 1996 definition 5 for equal weights)",
         "sd_definition": "sd of the weighted empirical distribution (no small-sample factor)",
         "left_out": left_out,
+        "level": level,
     }
+    # -- non-finite cheap predictions: dropped and counted, never a crash ----------------------
+    cheap_ok = None  # per component: whether the cheap model is usable at every survivor
+    if cc is not None:
+        cc_flat = cc.reshape(cc.shape[0], -1)
+        finite_rows = np.all(np.isfinite(cc_flat), axis=1)
+        n_bad = int((~finite_rows).sum())
+        if n_bad:
+            details["cheap_nonfinite_chain_rows"] = n_bad
+            details["cheap_note"] = (
+                f"{n_bad} of {cc.shape[0]} chain rows gave a non-finite cheap prediction; "
+                "they are left out of the cheap model's chain mean and its checks"
+            )
+        if n_bad == cc.shape[0]:
+            cp = cc = None
+            details["cheap_note"] = "every cheap prediction is non-finite; the cheap model is unused"
+        else:
+            cc = cc[finite_rows]
+            if chain_weights is not None:
+                chain_weights = np.asarray(chain_weights, dtype=np.float64)[finite_rows]
+            if chain_index is not None:
+                chain_index = np.asarray(chain_index)[finite_rows]
     if y.shape[0] == 0:
         return _nan_estimate(name, units, shape, qs, th, m, left_out)
 
@@ -529,7 +574,6 @@ def estimate_qoi(
             "surviving selection weights renormalised to sum to one "
             "(no re-solve available; the discrepancy growth is unknown)"
         )
-    wb = w.reshape((-1,) + (1,) * len(shape))
     ess_points = kish_ess(w)
     details["ess_points"] = ess_points
     details["positions_used"] = pos
@@ -543,26 +587,26 @@ def estimate_qoi(
     exceed = {float(t): _exceedance(y, w, float(t)) for t in th}
     uncertainty: dict[str, np.ndarray] = {}
 
-    # -- 3. resampling uncertainty -------------------------------------------------------------
     if bootstrap:
         se, low, high = bootstrap_mean_se(y, w, n_boot=bootstrap, rng=gen)
-        uncertainty["bootstrap_se"] = se
-        details["bootstrap"] = {
-            "method": "pairs bootstrap: points with positive weight drawn uniformly with "
-            "replacement, weighted mean of each resample (Efron & Tibshirani 1993)",
-            "resamples": int(bootstrap),
+        details["iid_bootstrap"] = {
+            "se": se,
             "interval_95": (low, high),
+            "note": "i.i.d. pairs bootstrap, for comparison only: the points are optimised, "
+            "not random, and this overstates their error (Efron & Tibshirani 1993)",
         }
 
-    # -- 4. chain Monte Carlo error ------------------------------------------------------------
+    # -- chain Monte Carlo error ---------------------------------------------------------------
     chain_sd = None
     cw = None
+    chain_mean = None
     if cc is not None:
         n = cc.shape[0]
-        if chain_weights is not None:
-            cw = _validate_weights(chain_weights, n, "chain_weights")
-        else:
-            cw = np.full(n, 1.0 / n)
+        cw = (
+            _validate_weights(chain_weights, n, "chain_weights")
+            if chain_weights is not None
+            else np.full(n, 1.0 / n)
+        )
         chain_mean, chain_sd = weighted_mean_sd(cc, cw)
         details["chain_rows"] = int(n)
     if chain_ess is not None:
@@ -580,46 +624,34 @@ def estimate_qoi(
         ess_c = None
         ess_basis = ""
     if ess_c is not None:
-        if chain_sd is not None:
-            uncertainty["chain_mcse"] = chain_sd / np.sqrt(ess_c)
-            details["chain_mcse"] = (
-                f"sd of the cheap prediction over the chain / sqrt(ESS); ESS {ess_basis}"
-            )
-        else:
-            uncertainty["chain_mcse"] = sd / np.sqrt(ess_c)
-            details["chain_mcse"] = (
-                "weighted sd of the QoI / sqrt(chain ESS) (no cheap "
-                f"prediction on the chain); ESS {ess_basis}"
-            )
+        # the QoI's own spread over the chain, at the ESS of the chain
+        uncertainty["chain_mcse"] = np.asarray(sd / np.sqrt(ess_c), dtype=np.float64)
+        details["chain_mcse"] = (
+            f"weighted sd of the QoI / sqrt(chain ESS); ESS {ess_basis}: the chain's own "
+            "Monte Carlo error of the posterior expectation"
+        )
         details["chain_ess"] = np.asarray(ess_c, dtype=np.float64)
 
-    # -- 1 and 2. thinning gap and multi-fidelity control variate -----------------------------
+    # -- the cheap model's check of the selection (not an error term: the multi-fidelity
+    # estimate applies it as its correction) --------------------------------------------------
     control = None
-    if cp is not None:
+    if cp is not None and chain_mean is not None:
         c = cp[pos]
-        c_points = np.sum(wb * c, axis=0)
-        gap = c_points - chain_mean  # thinning error of the cheap model, measured exactly
-        uncertainty["thinning_gap"] = gap
-        d = y - c
-        d_mean, d_sd = weighted_mean_sd(d, w)
-        cv_mean = (
-            chain_mean + d_mean
-        )  # discrepancy form, coefficient 1 (control variate, cf. [1] sec. 2)
-        se_chain = uncertainty.get("chain_mcse", np.zeros(shape))
-        se_disc = d_sd / np.sqrt(ess_points)  # treats the points as ess_points i.i.d. draws
-        cv_se = np.sqrt(se_disc**2 + se_chain**2)
-        uncertainty["control_variate_se"] = cv_se
-        _, c_sd = weighted_mean_sd(c, w)
-        cov = np.sum(wb * (y - mean) * (c - c_points), axis=0)
+        c_points = np.sum(w.reshape((-1,) + (1,) * len(shape)) * c, axis=0)
+        with np.errstate(invalid="ignore"):
+            gap = c_points - chain_mean
+        details["cheap_gap"] = np.asarray(gap)
+        d_mean, d_sd = weighted_mean_sd(np.where(np.isfinite(c), y - c, 0.0), w)
+        _, c_sd = weighted_mean_sd(np.where(np.isfinite(c), c, 0.0), w)
+        cov = np.sum(
+            w.reshape((-1,) + (1,) * len(shape)) * (y - mean) * (np.nan_to_num(c) - c_points),
+            axis=0,
+        )
         with np.errstate(invalid="ignore", divide="ignore"):
             rho = np.where((sd > 0) & (c_sd > 0), cov / (sd * c_sd), np.nan)
-            alpha = np.where(c_sd > 0, cov / c_sd**2, 0.0)  # = rho sigma_hi / sigma_lo
-        opt_mean = mean - alpha * gap  # mean + alpha (chain mean - points mean)
-        _, r_sd = weighted_mean_sd(y - alpha * c, w)
-        opt_se = np.sqrt(r_sd**2 / ess_points + (alpha * se_chain) ** 2)
+        cheap_ok = np.all(np.isfinite(c.reshape(c.shape[0], -1)), axis=0)
         control = {
-            "mean": np.asarray(cv_mean),
-            "se": np.asarray(cv_se),
+            "mean": np.asarray(chain_mean + d_mean),
             "correlation": np.asarray(rho),
             "form": "discrepancy (coefficient 1): chain mean of cheap + weighted mean of "
             "(costly - cheap) at the points",
@@ -627,21 +659,21 @@ def estimate_qoi(
             "cheap_points_mean": np.asarray(c_points),
             "discrepancy_mean": np.asarray(d_mean),
             "discrepancy_sd": np.asarray(d_sd),
-            "se_discrepancy": np.asarray(se_disc),
-            "se_chain": np.asarray(se_chain, dtype=np.float64),
             "ess_points": ess_points,
-            "optimal": {
-                "alpha": np.asarray(alpha),
-                "mean": np.asarray(opt_mean),
-                "se": np.asarray(opt_se),
-                "form": "optimal coefficient alpha = rho sigma_costly / sigma_cheap, "
-                "estimated from the same points",
-            },
         }
-        details["control_variate_se"] = (
-            "sqrt(sd_w(costly - cheap)^2 / ESS_Kish(weights) + "
-            "chain_mcse^2); points treated as ESS_Kish i.i.d. draws"
-        )
+
+    # -- the error model: one headline per component ------------------------------------------
+    headline = _headlines(
+        y, w, pos, shape, points, geometry, cp, cc, cw, cheap_ok, uncertainty, ess_c,
+        ess_points, qs, quant, th, level, forecast, gen,
+    )
+    if headline is not None:
+        uncertainty["thinning_se"] = np.asarray(headline.pop("_thinning_se"))
+        uncertainty["total_se"] = np.asarray(headline.pop("_total_se"))
+        if control is not None:
+            control["se"] = np.asarray(headline.pop("_discrepancy_se"))
+        else:
+            headline.pop("_discrepancy_se")
     return QoIEstimate(
         name=name,
         units=units,
@@ -656,4 +688,106 @@ def estimate_qoi(
         weights_resolved=weights_resolved,
         mmd_growth=mmd_growth,
         details=details,
+        headline=headline,
     )
+
+
+def _headlines(
+    y, w, pos, shape, points, geometry, cp, cc, cw, cheap_ok, uncertainty, ess_c, ess_points,
+    qs, quant, th, level, want_forecast, gen,
+) -> dict[str, Any] | None:
+    """Error model, headline estimate and intervals of every component; None without chain."""
+    if points is None or geometry is None:
+        return None
+    pts_all = np.asarray(points, dtype=np.float64)
+    if pts_all.ndim == 1:
+        pts_all = pts_all[:, None]
+    pts = pts_all[pos]
+    k = int(np.prod(shape)) if shape else 1
+    yf = y.reshape(y.shape[0], k)
+    cpf = None if cp is None else cp[pos].reshape(len(pos), k)
+    ccf = None if cc is None else cc.reshape(cc.shape[0], k)
+    mcse = uncertainty.get("chain_mcse")
+    mcf = np.zeros(k) if mcse is None else np.asarray(mcse, dtype=np.float64).reshape(k)
+    essf = None if ess_c is None else np.asarray(ess_c, dtype=np.float64).reshape(k)
+    comps: list[dict[str, Any]] = []
+    fits = []
+    for j in range(k):
+        usable = cpf is not None and (cheap_ok is None or bool(np.ravel(cheap_ok)[j]))
+        cmean = float(cw @ ccf[:, j]) if usable else None
+        fit, h = component_headline(
+            pts, yf[:, j], w, geometry,
+            cheap_points=cpf[:, j] if usable else None, cheap_chain_mean=cmean,
+            chain_mcse=float(mcf[j]), level=level,
+        )
+        probs = {}
+        for t in th:
+            ci = (cpf[:, j] > t).astype(float) if usable else None
+            cm = float(cw @ (ccf[:, j] > t)) if usable else None
+            probs[float(t)] = probability_interval(
+                pts, (yf[:, j] > t).astype(float), w, geometry, cheap_indicator_points=ci,
+                cheap_indicator_mean=cm, ess_points=ess_points,
+                chain_ess=None if essf is None else float(essf[j]), level=level,
+            )
+        qint = {}
+        for q in qs:
+            est_q = float(np.ravel(quant[float(q)])[j])
+            ci = (cpf[:, j] <= est_q).astype(float) if usable else None
+            cm = float(cw @ (ccf[:, j] <= est_q)) if usable else None
+            cdf = probability_interval(
+                pts, (yf[:, j] <= est_q).astype(float), w, geometry,
+                cheap_indicator_points=ci, cheap_indicator_mean=cm, ess_points=ess_points,
+                chain_ess=None if essf is None else float(essf[j]), level=level,
+            )
+            qint[float(q)] = quantile_interval(yf[:, j], w, float(q), est_q, cdf, level)
+        h["exceedance_intervals"] = {t: v["interval"] for t, v in probs.items()}
+        h["exceedance_estimates"] = {t: v["estimate"] for t, v in probs.items()}
+        h["quantile_intervals"] = qint
+        comps.append(h)
+        fits.append(fit)
+
+    def arr(key: str) -> np.ndarray:
+        return np.asarray([c[key] for c in comps], dtype=np.float64).reshape(shape)
+
+    flags = sorted({f for c in comps for f in c["flags"]})
+    rules = sorted({c["rule"] for c in comps})
+    out: dict[str, Any] = {
+        "level": level,
+        "estimate": arr("estimate"),
+        "interval_low": np.asarray([c["interval"][0] for c in comps]).reshape(shape),
+        "interval_high": np.asarray([c["interval"][1] for c in comps]).reshape(shape),
+        "chain_mean_low": np.asarray([c["chain_mean_interval"][0] for c in comps]).reshape(shape),
+        "chain_mean_high": np.asarray(
+            [c["chain_mean_interval"][1] for c in comps]
+        ).reshape(shape),
+        "interval_for": "the posterior expectation of the QoI (thinning error and the chain's "
+        "Monte Carlo error); chain_mean_low/high: the mean over the chain rows (thinning only)",
+        "rule": rules[0] if len(rules) == 1 else "per component: " + ", ".join(rules),
+        "flags": flags,
+        "reliable": not flags and all(np.isfinite(c["thinning_se"]) for c in comps),
+        "components": comps,
+        "_thinning_se": arr("thinning_se"),
+        "_total_se": arr("total_se"),
+        "_discrepancy_se": np.asarray(
+            [c["candidates"].get("discrepancy", {}).get("se", np.nan) for c in comps]
+        ).reshape(shape),
+        "assumptions": ASSUMPTIONS,
+    }
+    if want_forecast:
+        j = int(np.nanargmax([c["thinning_se"] if np.isfinite(c["thinning_se"]) else -1
+                              for c in comps])) if comps else 0
+        out["forecast"] = {"component": j, "extra_points": forecast(fits[j], pts, w, geometry,
+                                                                    gen)}
+        out["forecast"]["now"] = comps[j]["thinning_se"]
+    return out
+
+
+ASSUMPTIONS = (
+    "The QoI (or its difference from the cheap model) behaves like a draw from a Gaussian "
+    "process with a Matern 5/2 covariance whose scale, length and nugget are fitted to the run "
+    "values (REML); the thinning error of a weighted rule is then Gaussian with sd sigma x MMD "
+    "of the points to the chain under that covariance. A feature narrower than the spacing of "
+    "the points, that no run touched and the cheap model does not share, cannot be seen by any "
+    "error model built from these runs: the leave-one-out and cheap-model checks flag the "
+    "features they can see. The chain's Monte Carlo error is sd / sqrt(ESS)."
+)

@@ -554,7 +554,17 @@ class CollectSettings(_Model):
         description="Probabilities of the reported weighted quantiles (dimensionless).",
     )
     bootstrap: int = Field(
-        1000, ge=0, description="Weighted bootstrap resamples for the resampling error (0: off)."
+        0,
+        ge=0,
+        description="Resamples of an i.i.d. pairs bootstrap of the weighted mean, stored for "
+        "comparison only (it overstates the error of optimised points); 0: off.",
+    )
+    level: float = Field(
+        0.95,
+        ge=0.5,
+        lt=1.0,
+        description="Level of every stated interval (estimates, quantiles, exceedance "
+        "probabilities), e.g. 0.95 for 95 % intervals.",
     )
 
     @field_validator("quantiles")

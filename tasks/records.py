@@ -289,8 +289,9 @@ class QoIEstimate:
     exceedance : dict of float to ndarray
         Weighted probability that the QoI exceeds each threshold.
     uncertainty : dict of str to ndarray
-        Standard errors (or gaps) by labelled source, e.g. ``thinning_gap``,
-        ``control_variate_se``, ``bootstrap_se``, ``chain_mcse``.
+        Standard errors by labelled source: ``thinning_se`` (the error model's, against the
+        chain mean), ``chain_mcse`` (the chain's Monte Carlo error) and ``total_se`` (both, for
+        the posterior expectation).
     control_variate : dict or None
         The multi-fidelity estimate: ``mean``, ``se``, ``correlation``.
     n_used, n_missing : int
@@ -298,6 +299,12 @@ class QoIEstimate:
     weights_resolved : bool
         True when weights were re-solved for surviving points; ``mmd_growth`` says by how much
         the discrepancy grew.
+    headline : dict or None
+        The one answer to report: ``estimate`` and the interval ``interval_low`` /
+        ``interval_high`` at ``level`` for the posterior expectation (``chain_mean_low`` /
+        ``chain_mean_high`` for the chain mean), the estimator ``rule``, the error model's
+        ``flags`` and ``reliable``, per-component details (``components``), ``assumptions``
+        and the ``forecast`` of the error with more points. None when no chain was given.
     """
 
     name: str
@@ -313,6 +320,7 @@ class QoIEstimate:
     weights_resolved: bool = False
     mmd_growth: float = 0.0
     details: dict[str, Any] = field(default_factory=dict)
+    headline: dict[str, Any] | None = None
 
 
 def as_float_array(x: Any) -> np.ndarray:

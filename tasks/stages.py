@@ -399,6 +399,12 @@ def collect_stage(
     if chain.diagnostics is not None:
         ess = min(p.ess_bulk for p in chain.diagnostics.parameters.values())
     rng = np.random.default_rng(config.study.seed if rng is None else rng)
+    from ._uncertainty import ChainGeometry
+
+    # one view of the chain for every QoI's error model (its kernel embeddings are cached)
+    finite_rows = np.isfinite(chain.samples).all(axis=1)
+    geometry = ChainGeometry(chain.samples[finite_rows], rng=rng)
+    chain_points = chain.samples[selection.indices]
     values: list[QoIValue] = []
     estimates: list[QoIEstimate] = []
     for q in config.collect.qoi:
@@ -437,6 +443,9 @@ def collect_stage(
                 chain_index=chain.chain_index,
                 resolve_weights=_weights_resolver(chain, selection, order),
                 bootstrap=config.collect.bootstrap,
+                points=chain_points[order],
+                geometry=geometry,
+                level=config.collect.level,
                 rng=rng,
             )
         )

@@ -13,6 +13,7 @@ from winnow.tasks.collect import (
     weighted_mean_sd,
     weighted_quantile,
 )
+from winnow.tasks._uncertainty import ChainGeometry
 from winnow.tasks.records import QoIValue
 
 
@@ -139,17 +140,19 @@ def test_control_variate_recovers_costly_mean_with_constant_offset():
     assert float(cv["mean"]) == pytest.approx(costly_chain.mean(), rel=1e-13)
     assert float(cv["discrepancy_sd"]) == pytest.approx(0.0, abs=1e-13)
     assert float(cv["correlation"]) == pytest.approx(1.0, rel=1e-12)
-    assert float(cv["optimal"]["alpha"]) == pytest.approx(1.0, rel=1e-12)
-    # thinning gap: weighted cheap mean at the points minus its chain mean (definition)
+    # the cheap model's check of the selection: weighted cheap mean at the points minus its
+    # chain mean (definition); reported as a check, not as an error term (issue 19 item 4)
     gap = w @ cheap(chain[idx]) - cheap(chain).mean()
-    assert float(est.uncertainty["thinning_gap"]) == pytest.approx(gap, rel=1e-12)
+    assert float(est.details["cheap_gap"]) == pytest.approx(gap, rel=1e-12)
+    assert "thinning_gap" not in est.uncertainty
     # and the plain weighted mean is off by exactly that gap
     assert float(est.mean) - costly_chain.mean() == pytest.approx(gap, rel=1e-10)
 
 
-def test_optimal_coefficient_recovers_affine_costly_mean():
-    # Costly = 2 cheap + 1: alpha = rho sd_hi / sd_lo = 2 and the optimal-coefficient estimate
-    # mean_w(y) + alpha (mean_chain(c) - mean_w(c)) = 2 mean_chain(c) + 1 exactly.
+def test_regression_rule_recovers_affine_costly_mean():
+    # Costly = 2 cheap + 1 exactly: the GLS coefficient of the regression form is 2 and its
+    # estimate mean_w(y) - 2 (mean_w(c) - mean_chain(c)) = 2 mean_chain(c) + 1 exactly
+    # (algebra); the coefficient-one form is off by (2 - 1) * gap.
     chain, idx, w = _chain_and_points(seed=8)
     c_chain = chain[:, 0] * chain[:, 1]
     est = estimate_qoi(
@@ -158,32 +161,36 @@ def test_optimal_coefficient_recovers_affine_costly_mean():
         name="h",
         cheap_on_points=c_chain[idx],
         cheap_on_chain=c_chain,
-        bootstrap=0,
+        points=chain[idx],
+        geometry=ChainGeometry(chain, rng=0),
+        forecast=False,
     )
-    opt = est.control_variate["optimal"]
-    assert float(opt["alpha"]) == pytest.approx(2.0, rel=1e-12)
-    assert float(opt["mean"]) == pytest.approx(2 * c_chain.mean() + 1, rel=1e-12)
-    # the coefficient-one form is off by (alpha - 1) * gap = gap here
-    gap = float(est.uncertainty["thinning_gap"])
+    comp = est.headline["components"][0]
+    reg = comp["candidates"]["regression"]
+    assert reg["coefficient"] == pytest.approx(2.0, rel=1e-9)
+    assert reg["estimate"] == pytest.approx(2 * c_chain.mean() + 1, rel=1e-12)
+    gap = float(est.details["cheap_gap"])
     assert float(est.control_variate["mean"]) == pytest.approx(
         2 * c_chain.mean() + 1 + gap, rel=1e-12
     )
+    # an exact affine relation leaves no residual error: the regression form is chosen
+    assert comp["rule"] == "regression"
+    assert float(est.headline["estimate"]) == pytest.approx(2 * c_chain.mean() + 1, rel=1e-12)
 
 
-def test_control_variate_se_and_chain_mcse_formulas():
-    # se = sqrt(sd_w(d)^2 / ESS_Kish + (sd_chain(c)/sqrt(ESS_chain))^2) (documented formula).
+def test_chain_mcse_and_correlation_formulas():
+    # chain_mcse = sd_w(QoI) / sqrt(ESS_chain) (documented formula: the QoI's own spread at
+    # the chain's effective size).
     chain, idx, w = _chain_and_points(seed=9)
     c = chain[:, 0]
     y = c[idx] + 0.2 * chain[idx, 1] ** 2
     est = estimate_qoi(
         y, w, name="h", cheap_on_points=c[idx], cheap_on_chain=c, chain_ess=400.0, bootstrap=0
     )
-    d = y - c[idx]
-    _, d_sd = weighted_mean_sd(d, w)
-    mcse = c.std() / np.sqrt(400.0)
+    _, y_sd = weighted_mean_sd(y, w)
+    mcse = y_sd / np.sqrt(400.0)
     assert float(est.uncertainty["chain_mcse"]) == pytest.approx(mcse, rel=1e-12)
-    expected = np.sqrt(d_sd**2 / kish_ess(w) + mcse**2)
-    assert float(est.uncertainty["control_variate_se"]) == pytest.approx(expected, rel=1e-12)
+    assert est.headline is None  # no chain coordinates given: no error model
     assert float(est.control_variate["correlation"]) == pytest.approx(
         np.cov(y, c[idx], aweights=w, bias=True)[0, 1]
         / np.sqrt(np.cov(y, aweights=w, bias=True) * np.cov(c[idx], aweights=w, bias=True)),
@@ -194,7 +201,7 @@ def test_control_variate_se_and_chain_mcse_formulas():
 def test_chain_mcse_without_cheap_model_uses_weighted_sd():
     est = estimate_qoi([1.0, 2.0, 4.0], [0.2, 0.3, 0.5], name="q", chain_ess=100.0, bootstrap=0)
     assert float(est.uncertainty["chain_mcse"]) == pytest.approx(np.sqrt(1.56) / 10.0, rel=1e-14)
-    assert "thinning_gap" not in est.uncertainty and est.control_variate is None
+    assert "cheap_gap" not in est.details and est.control_variate is None
 
 
 def test_weighted_chain_uses_kish_ess():
@@ -210,7 +217,7 @@ def test_weighted_chain_uses_kish_ess():
         chain_weights=cw,
         bootstrap=0,
     )
-    _, sd = weighted_mean_sd(c, cw)
+    _, sd = weighted_mean_sd(c[:5], np.ones(5))
     assert float(est.uncertainty["chain_mcse"]) == pytest.approx(
         sd / np.sqrt(kish_ess(cw)), rel=1e-12
     )
@@ -250,7 +257,9 @@ def test_estimate_computes_chain_ess_when_not_given():
         x[:10], np.ones(10), name="q", cheap_on_points=x[:10], cheap_on_chain=x, bootstrap=0
     )
     ess = float(chain_ess(x))
-    assert float(est.uncertainty["chain_mcse"]) == pytest.approx(x.std() / np.sqrt(ess), rel=1e-12)
+    assert float(est.uncertainty["chain_mcse"]) == pytest.approx(
+        x[:10].std() / np.sqrt(ess), rel=1e-12
+    )
     assert ess < 0.3 * x.size  # AR(1) with phi=.8: ESS ~ n (1-phi)/(1+phi) = n/9
 
 
@@ -339,7 +348,7 @@ def test_cheap_points_are_subset_with_the_survivors():
     )
     # weights renormalised to (2/3, 1/3); discrepancy (0.5, 0.5) -> cv mean = 1.5 + 0.5
     assert float(est.control_variate["mean"]) == pytest.approx(2.0, rel=1e-14)
-    assert float(est.uncertainty["thinning_gap"]) == pytest.approx(
+    assert float(est.details["cheap_gap"]) == pytest.approx(
         (2 / 3) * 0.5 + (1 / 3) * 2.5 - 1.5, rel=1e-12
     )
 
@@ -374,6 +383,9 @@ def test_vector_qoi_is_columnwise_scalar():
         thresholds=(1.0,),
         rng=3,
         chain_ess=500.0,
+        points=chain[idx],
+        geometry=ChainGeometry(chain, rng=0),
+        forecast=False,
     )
     for j in range(3):
         one = estimate_qoi(
@@ -385,13 +397,19 @@ def test_vector_qoi_is_columnwise_scalar():
             thresholds=(1.0,),
             bootstrap=0,
             chain_ess=500.0,
+            points=chain[idx],
+            geometry=ChainGeometry(chain, rng=0),
+            forecast=False,
         )
         assert vec.mean[j] == pytest.approx(float(one.mean), rel=1e-13)
         assert vec.quantiles[0.95][j] == pytest.approx(float(one.quantiles[0.95]), rel=1e-13)
         assert vec.exceedance[1.0][j] == pytest.approx(float(one.exceedance[1.0]), rel=1e-13)
-        for key in ("thinning_gap", "control_variate_se", "chain_mcse"):
-            assert vec.uncertainty[key][j] == pytest.approx(float(one.uncertainty[key]), rel=1e-12)
-    assert vec.uncertainty["bootstrap_se"].shape == (3,)
+        assert vec.details["cheap_gap"][j] == pytest.approx(float(one.details["cheap_gap"]))
+        for key in ("thinning_se", "chain_mcse", "total_se"):
+            assert vec.uncertainty[key][j] == pytest.approx(float(one.uncertainty[key]), rel=1e-9)
+        assert vec.headline["interval_low"][j] == pytest.approx(
+            float(one.headline["interval_low"]), rel=1e-9
+        )
 
 
 @pytest.mark.parametrize(
@@ -488,6 +506,5 @@ def test_estimate_fields_are_arrays():
     ]
     cv = est.control_variate
     arrays_ += [v for v in cv.values() if not isinstance(v, str | dict | float)]
-    arrays_ += [v for v in cv["optimal"].values() if not isinstance(v, str)]
     for a in arrays_:
         assert type(a) is np.ndarray and a.shape == () and a.dtype == np.float64
