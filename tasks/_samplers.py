@@ -192,7 +192,8 @@ class AdaptiveMetropolis(Move):
 
     The Gaussian random-walk proposal of chain ``i`` is ``N(x_i, lambda^2 s_d C)`` with
     ``s_d = 2.4^2 / d`` (Haario et al. 2001, Eq. (2.1); the 2.38^2 / d of Gelman, Roberts &
-    Gilks 1996 rounded) and ``C`` the empirical covariance of the draws plus ``eps I``.
+    Gilks 1996 rounded) and ``C`` the empirical covariance of the draws plus ``eps I`` in
+    coordinates standardised by ``C``'s own diagonal (see "Scale" below).
     ``C`` is *pooled over the chains*: the within-chain covariance
     ``W = sum_k sum_t (x_kt - mean_k)(x_kt - mean_k)' / (K (n - 1))`` of all ``K`` chains,
     updated recursively every iteration (Haario et al. 2001, Eq. (3), one Welford update per
@@ -225,12 +226,25 @@ class AdaptiveMetropolis(Move):
     refactorised every ``refresh`` iterations (the running statistics take every draw;
     this only saves the ``O(d^3)`` factorisation), and ``lambda`` fixed (at 1 when there
     was no burn-in).
+
+    Scale. The proposal does not depend on the parameters' units: ``C_0`` is set from each
+    prior's own scale, and the regularisation of Haario et al.'s ``C + eps I`` (which only
+    keeps ``C`` positive definite) is applied in coordinates standardised by ``C``'s
+    diagonal, i.e. ``C + eps diag(C)``, floored at ``(1e-6 prior scale)^2``, and ``C`` is
+    factorised as ``D R D`` (``R`` a correlation matrix, ``D`` the standard deviations).
+    Rescaling a parameter (metres to nanometres, GPa to Pa) rescales its row of the
+    Cholesky factor and leaves the chain, in the user's units over the scale, unchanged
+    up to rounding. An ``eps`` relative to the *mean* variance, as before, added
+    ``1e-10 (1.5e9)^2 / 2``, about 100, to the variance of a bounded parameter of scale 1
+    next to a modulus of posterior sd 1.5e9 Pa: its proposals jumped over the whole logit
+    range, the global ``lambda`` shrank to compensate and the modulus's chains stood still
+    (R-hat near 4, ESS 4; issue 17 item 2).
     """
 
     name = "adaptive_metropolis"
     symmetric = True
     target_acceptance = 0.234  # Roberts, Gelman & Gilks (1997), common practice
-    epsilon = 1e-10  # relative regularisation eps of C (Haario et al. 2001: eps > 0 small)
+    epsilon = 1e-10  # regularisation eps of standardised C (Haario et al. 2001: eps > 0 small)
     refresh = 10  # iterations between Cholesky factorisations of C_t (no burn-in)
     max_window = 0.125  # longest window, as a fraction of the burn-in
     terminal = 0.1  # fraction of the burn-in (at least 50 iterations) that tunes lambda only
@@ -311,7 +325,7 @@ class AdaptiveMetropolis(Move):
                     # practice): a short window's estimate stays positive definite.
                     w = n / (n + 5.0)
                     cov = w * cov + (1.0 - w) * np.diag(np.diag(cov))
-                    st["chol"] = _cholesky(cov[None])[0]
+                    st["chol"] = _scaled_cholesky(cov)
                     st["log_lambda"][:] = 0.0  # tuned afresh around s_d C
                     st["steps"][0] = 0.0
                 self._reset_statistics()
@@ -324,7 +338,7 @@ class AdaptiveMetropolis(Move):
             # Plain AM (Haario et al. 2001): C_0 until t0, then the pooled C_t of the history.
             c = self._update(x, i)
             if c > self.t0 and (c == self.t0 + 1 or c % self.refresh == 0):
-                st["chol"] = _cholesky(self._empirical()[None])[0]
+                st["chol"] = _scaled_cholesky(self._empirical())
         m, d = x.shape
         (z,) = self._ahead(ctx, rng, lambda g, n: (g.standard_normal((n, m, d)),))
         # The step is z (sqrt(s_d) lambda L)' for each chain (lambda scales the std dev).
@@ -398,16 +412,19 @@ class AdaptiveMetropolis(Move):
         st["m2"][:] = 0.0
 
     def _empirical(self) -> np.ndarray:
-        """Pooled within-chain covariance plus ``eps I`` (eps relative to the mean variance,
-        floored at 1e-12 of the prior variances so that chains that rejected everything
-        for a while still get a usable proposal)."""
+        """Pooled within-chain covariance plus ``eps I`` in standardised coordinates, i.e.
+        ``eps diag(C)``: each variance grows by the same relative amount whatever the
+        parameters' units (an eps relative to the mean variance swamped a parameter of
+        scale 1 next to one of scale 1e10). Floored at 1e-12 of the prior variances so
+        that chains that rejected everything for a while still get a usable proposal."""
         self._flush()
         n = self.state["count"][0]
         k = self.n_chains
         cov = self.state["m2"] / max(k * (n - 1.0), 1.0)
         cov = 0.5 * (cov + cov.T)
         diag = np.einsum("ii->i", cov)  # a writeable view of the diagonal
-        diag += self.epsilon * diag.sum() / self.d + self._floor
+        diag *= 1.0 + self.epsilon
+        diag += self._floor
         return cov
 
 
@@ -569,6 +586,17 @@ MOVES: dict[str, type[Move]] = {
     StretchMove.name: StretchMove,
     DifferentialEvolution.name: DifferentialEvolution,
 }
+
+
+def _scaled_cholesky(cov: np.ndarray) -> np.ndarray:
+    """Cholesky factor of one covariance, shape (d, d), computed as ``D chol(R)`` with ``R``
+    the correlation matrix and ``D`` the standard deviations: the factorisation (and its
+    positive-definiteness test) then sees numbers of order 1 whatever the parameters'
+    scales (1e-9 next to 1e10 in one matrix)."""
+    sd = np.sqrt(np.diag(cov))
+    inv = 1.0 / sd
+    corr = cov * inv[:, None] * inv[None, :]
+    return _cholesky(corr[None])[0] * sd[:, None]
 
 
 def _cholesky(cov: np.ndarray) -> np.ndarray:

@@ -41,8 +41,9 @@ def test_pooled_covariance_matches_numpy_oracle():
         ctx = StepContext(iteration=t, index=np.arange(k), adapting=False, accept_prob=None)
         move.propose(states[t], np.empty((0, d)), rng, ctx)
     oracle = np.mean([np.cov(states[:, c, :].T) for c in range(k)], axis=0)
-    # plus eps I: 1e-10 of the mean variance and a floor of 1e-12 of the prior variance 1
-    oracle += (1e-10 * np.trace(oracle) / d + 1e-12) * np.eye(d)
+    # plus eps I in standardised coordinates: 1e-10 of each variance, and a floor of 1e-12
+    # of the prior variance 1
+    oracle += np.diag(1e-10 * np.diag(oracle) + 1e-12)
     np.testing.assert_allclose(move._empirical(), oracle, rtol=1e-10, atol=1e-13)
 
 
