@@ -60,7 +60,7 @@ RESERVED_VARIABLES = frozenset(
 MANIFEST_FORMAT = "winnow-run-manifest"
 MANIFEST_VERSION = 1
 
-_PLACEHOLDER = re.compile(r"\{(deck|run_dir|run_id)(?::([^{}]+))?\}")
+_PLACEHOLDER = re.compile(r"\{(deck|run_dir|run_id|config_dir)(?::([^{}]+))?\}")
 
 
 class DeckError(ValueError):
@@ -90,14 +90,19 @@ def _validate_params(params: Any) -> dict[str, float]:
     return out
 
 
-def _validate_relative(path: str, *, what: str) -> PurePosixPath:
-    """Return ``path`` as a clean relative path, refusing absolute paths and ``..``."""
+def _validate_relative(path: str, *, what: str, fix: str = "") -> PurePosixPath:
+    """Return ``path`` as a clean relative path, refusing absolute paths and ``..``.
+
+    ``fix`` is appended to the message of a refused ``..`` (what to write instead).
+    """
     text = os.fspath(path)
     pure = PurePosixPath(text.replace("\\", "/"))
     if pure.is_absolute() or re.match(r"^[A-Za-z]:", text):
         raise DeckError(f"{what}: path {text!r} is absolute; it must stay inside the run folder")
     if any(part == ".." for part in pure.parts):
-        raise DeckError(f"{what}: path {text!r} contains '..'; it must stay inside the run folder")
+        raise DeckError(
+            f"{what}: path {text!r} contains '..'; it must stay inside the run folder{fix}"
+        )
     parts = [p for p in pure.parts if p not in ("", ".")]
     if not parts:
         raise DeckError(f"{what}: path {text!r} names no file")
@@ -386,7 +391,8 @@ def _template_name(entry: str, template_root: Path) -> str:
                 "give templates relative to the template root"
             ) from None
         return rel.as_posix()
-    return str(_validate_relative(entry, what=f"template {entry!r}"))
+    fix = "; move the template under the template root, or use a root that holds it"
+    return str(_validate_relative(entry, what=f"template {entry!r}", fix=fix))
 
 
 def _source_and_dest(entry: str, template_root: Path, what: str) -> tuple[Path, PurePosixPath]:
@@ -394,7 +400,12 @@ def _source_and_dest(entry: str, template_root: Path, what: str) -> tuple[Path, 
     if path.is_absolute():
         source, dest = path, PurePosixPath(path.name)
     else:
-        dest = _validate_relative(entry, what=f"{what} {entry!r}")
+        name = PurePosixPath(entry.replace("\\", "/")).name
+        fix = (
+            f"; give its absolute path, {os.path.normpath(template_root.absolute() / entry)!r} "
+            f"(staged as {name!r}), or move it under the template root {str(template_root)!r}"
+        )
+        dest = _validate_relative(entry, what=f"{what} {entry!r}", fix=fix)
         source = template_root / entry
     if not source.exists():
         raise FileNotFoundError(f"{what} {entry!r}: source file {source} does not exist")
@@ -402,12 +413,24 @@ def _source_and_dest(entry: str, template_root: Path, what: str) -> tuple[Path, 
 
 
 def _fill_argv(
-    argv: tuple[str, ...], run_dir: Path, run_id: str, decks: list[PurePosixPath]
+    argv: tuple[str, ...],
+    run_dir: Path,
+    run_id: str,
+    decks: list[PurePosixPath],
+    config_dir: Path | None = None,
 ) -> tuple[str, ...]:
     by_name = {str(d): d for d in decks}
 
     def sub(match: re.Match[str]) -> str:
         kind, arg = match.group(1), match.group(2)
+        if kind == "config_dir":
+            if config_dir is None:
+                raise DeckError(
+                    "command placeholder {config_dir}: the config file's folder is not known "
+                    "here; read the config with load_config (or parse_config(..., "
+                    "config_dir=...)), or give render_run(config_dir=...)"
+                )
+            return str(config_dir)
         if kind == "run_dir":
             return str(run_dir)
         if kind == "run_id":
@@ -471,6 +494,7 @@ def render_run(
     command: Sequence[str],
     template_root: Path | str,
     provenance: Mapping[str, str] | None = None,
+    config_dir: Path | str | None = None,
 ) -> RunSpec:
     """Render the run folder of one point and return its :class:`RunSpec`.
 
@@ -499,11 +523,16 @@ def render_run(
     decks : DeckSpec
     command : sequence of str
         Solver argv with placeholders ``{deck}`` (first rendered deck), ``{deck:<name>}``
-        (rendered deck by relative name), ``{run_dir}`` and ``{run_id}``.
+        (rendered deck by relative name), ``{run_dir}``, ``{run_id}`` and ``{config_dir}``.
+        It runs in the run folder: a relative file in it must be one the decks stage.
     template_root : path
         Folder the templates and relative copies/links are found in.
     provenance : dict of str to str, optional
         Ids of the study, chain, selection, ... recorded in the manifest.
+    config_dir : path, optional
+        Value of ``{config_dir}`` (made absolute); a study config read by ``load_config``
+        has it filled in already. A command that uses it without one is a
+        :class:`DeckError`.
 
     Returns
     -------
@@ -583,7 +612,8 @@ def render_run(
         if source.is_dir():
             raise DeckError(f"copy {str(dest)!r}: source {source} is a folder; link it instead")
         deck_hashes[str(dest)] = _sha256_file(source)
-    argv = _fill_argv(argv_template, run_dir, rid, list(rendered))
+    cdir = None if config_dir is None else Path(config_dir).absolute()
+    argv = _fill_argv(argv_template, run_dir, rid, list(rendered), cdir)
     key = run_key(deck_hashes, argv, run_dir)
     spec = RunSpec(
         run_id=rid,

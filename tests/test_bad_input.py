@@ -354,3 +354,76 @@ def test_thin_command_exits_0_or_2_on_random_chains(tmp_path, rows, budget, meth
     else:
         doc = json.loads(out.read_text())
         assert len(doc["indices"]) == budget
+
+
+# --------------------------------------------------------------------------------------------
+# files named in the solver command (issue 17 item 5)
+# --------------------------------------------------------------------------------------------
+def _solver_beside(folder: Path, **dispatch) -> Path:
+    """A valid study whose solver is ``solver.py`` next to the config, with ``dispatch``
+    settings replaced."""
+    from fault_solvers.kit import SOLVER
+
+    cfg = make_study(folder)
+    (folder / "solver.py").write_text(SOLVER.read_text())
+    data = study_data(folder)
+    data["dispatch"].update(dispatch)
+    cfg.write_text(yaml.safe_dump(data, sort_keys=False))
+    return cfg
+
+
+@pytest.mark.parametrize("command", ["run", "validate"])
+def test_relative_solver_next_to_config_is_refused_with_fix(tmp_path, command):
+    # The solver runs in its run folder (subprocess cwd); solver.py next to the config is
+    # not there, so every run would fail after validate had passed.
+    cfg = _solver_beside(tmp_path, command=["{python}", "solver.py", "{deck}"])
+    err = _refused(
+        tmp_path, [command, cfg], str(cfg), "dispatch.command[1]", "'solver.py'", "run folder"
+    )
+    assert "{config_dir}/solver.py" in err, err
+    assert f"copy: [{str(tmp_path.resolve() / 'solver.py')!r}]" in err, err
+    assert not (tmp_path / "runs").exists()
+
+
+@pytest.mark.parametrize("field", ["copy", "link"])
+def test_dotdot_staging_path_names_its_field_and_index(tmp_path, field):
+    cfg = _solver_beside(tmp_path, **{field: ["../solver.py"]})
+    for command in ("run", "validate"):
+        err = _refused(tmp_path, [command, cfg], f"dispatch.{field}[0]", "'../solver.py'")
+        # the fix: the absolute path (staged under its base name); not the templates field
+        assert f"{field}: [{str(tmp_path.resolve() / 'solver.py')!r}]" in err, err
+        assert "dispatch.templates" not in err, err
+
+
+def test_config_dir_placeholder_and_staged_copy_both_run(tmp_path):
+    # The two fixes the message offers both validate and then run in the run folder.
+    from winnow.tasks.config import load_config
+    from winnow.tasks.dispatch import render_run, run_one
+    from winnow.tasks.stages import deck_spec, solver_command
+
+    cases = {
+        "beside": {"command": ["{python}", "{config_dir}/solver.py", "{deck}"]},
+        "staged": {
+            "command": ["{python}", "solver.py", "{deck}"],
+            "copy": [str(tmp_path.resolve() / "staged" / "solver.py")],
+        },
+    }
+    for name, dispatch in cases.items():
+        cfg = _solver_beside(tmp_path / name, **dispatch)
+        res = _invoke("validate", cfg)
+        assert res.exit_code == 0, res.output
+        config, _ = load_config(cfg)
+        decks, root = deck_spec(config, cfg.parent)
+        spec = render_run(
+            {"x": 0.5, "y": 0.25},
+            point_index=0,
+            weight=1.0,
+            run_root=tmp_path / name / "runs",
+            decks=decks,
+            command=solver_command(config.dispatch.command),
+            template_root=root,
+        )
+        outcome = run_one(spec, outputs=["out.json"], timeout=60)
+        assert outcome.state == "succeeded", (name, outcome.message)
+        # the fault solver's q = x + 2 y (tests/fault_solvers/fault_solver.py)
+        assert json.loads((spec.run_dir / "out.json").read_text())["q"] == 1.0

@@ -173,6 +173,36 @@ def test_template_path_with_dotdot_is_refused(tpl, tmp_path, entry):
     assert entry in str(info.value)
 
 
+@pytest.mark.parametrize("kind", ["copies", "links"])
+def test_copy_or_link_with_dotdot_is_refused_with_the_absolute_path_as_fix(tpl, tmp_path, kind):
+    # issue 17 item 5: the message says what to write instead (an absolute path is staged
+    # under its base name, see DeckSpec)
+    (tmp_path / "mesh.msh").write_text("1 2 3")
+    decks = DeckSpec(["main.in.j2"], **{kind: ["../mesh.msh"]})
+    with pytest.raises(DeckError, match=r"contains '\.\.'") as info:
+        _render(tpl, tmp_path / "runs", decks=decks)
+    msg = str(info.value)
+    assert msg.startswith({"copies": "copy", "links": "link"}[kind] + " '../mesh.msh'"), msg
+    assert f"{str(tmp_path / 'mesh.msh')!r} (staged as 'mesh.msh')" in msg, msg
+    assert not (tmp_path / "runs").exists()
+    # the suggested form renders, and stages the file under its base name
+    fixed = DeckSpec(["main.in.j2"], **{kind: [str(tmp_path / "mesh.msh")]})
+    spec = _render(tpl, tmp_path / "runs", decks=fixed)
+    assert (spec.run_dir / "mesh.msh").read_text() == "1 2 3"
+
+
+def test_config_dir_placeholder(tpl, tmp_path):
+    command = [sys.executable, "{config_dir}/solver.py", "--in={deck}"]
+    spec = _render(tpl, tmp_path / "runs", command=command, config_dir=tmp_path / "cfg")
+    assert spec.argv[1] == f"{(tmp_path / 'cfg').absolute()}/solver.py"
+    assert spec.argv[2] == f"--in={spec.run_dir / 'main.in'}"
+    # without the folder the placeholder cannot be filled: refused, nothing written
+    with pytest.raises(DeckError, match=r"\{config_dir\}.*config_dir=") as info:
+        _render(tpl, tmp_path / "other", command=command)
+    assert "not known" in str(info.value)
+    assert not (tmp_path / "other").exists()
+
+
 def test_absolute_template_outside_root_is_refused(tpl, tmp_path):
     outside = tmp_path / "outside.j2"
     outside.write_text("x")
