@@ -737,6 +737,11 @@ class StudySettings(_Model):
     seed: int = Field(
         0, ge=0, description="Seed of every random choice in the study (sampling, thinning)."
     )
+    caution: str = Field(
+        "",
+        description="The study's own caution, shown in the report after the standard one "
+        "(e.g. which decisions the results must not be used for without further review).",
+    )
 
 
 class StudyConfig(_Model):
