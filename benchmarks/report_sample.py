@@ -5,7 +5,13 @@ Usage: python benchmarks/report_sample.py OUT_DIR [--no-plots]
 The data are invented for the picture only: a two-parameter aquifer (log10 transmissivity,
 log10 storativity), a Cooper-Jacob drawdown as the cheap model and the same law plus a small
 smooth discrepancy as the "costly" solver. Three runs fail so that the report shows left-out
-runs and re-solved weights.
+runs and re-solved weights. The points are chosen by the thin stage (greedy, simplex weights)
+and the estimates carry the error model's headline (interval, estimator, checks, forecast).
+
+Besides the ReportData fields it sets the optional attributes the report reads when present:
+``chain_index`` / ``draw_index`` of the plotted rows, ``cheap_at_points`` (the cheap
+prediction at the chosen points) and ``observations`` (invented pumping-test drawdowns with the
+cheap model's predictions over chain rows).
 """
 
 from __future__ import annotations
@@ -15,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from winnow.tasks._uncertainty import ChainGeometry
 from winnow.tasks.collect import ReportData, build_report, estimate_qoi, export_csv
 from winnow.tasks.records import (
     Attempt,
@@ -22,8 +29,8 @@ from winnow.tasks.records import (
     ParameterDiagnostics,
     QoIValue,
     RunOutcome,
-    Selection,
 )
+from winnow.tasks.thinning import thin
 
 PUMPING = 0.02  # m^3/s
 RADIUS = 150.0  # m, well to spring
@@ -39,31 +46,17 @@ def make_sample_data(seed: int = 3) -> ReportData:
     rng = np.random.default_rng(seed)
     names, units = ("log10_T", "log10_S"), ("log10 m^2/s", "log10 -")
     cov = np.array([[0.04, -0.012], [-0.012, 0.09]])
-    chain = rng.multivariate_normal([-2.3, -4.0], cov, size=4000)
+    n_chains, n_draws = 4, 1000
+    chain = rng.multivariate_normal([-2.3, -4.0], cov, size=n_chains * n_draws)
     m = 24
-    idx = np.sort(rng.choice(chain.shape[0], m, replace=False))
-    w = rng.dirichlet(np.full(m, 4.0))
-    pts = chain[idx]
-    sel = Selection(
-        indices=idx,
-        weights=w,
-        points=pts,
-        method="greedy",
-        weights_rule="simplex",
-        kernel="gaussian",
-        bandwidth=1.0,
-        feature_map="rff",
-        n_features=512,
-        seed=seed,
-        mmd_features=0.021,
-        mmd_exact=0.024,
-        mmd_exact_rows=4000,
-    )
+    sel = thin(chain, m, rng=seed, workers=1)
+    w, pts = sel.weights, sel.points
     days = np.array([1, 2, 5, 10, 20, 30, 45, 60, 90], dtype=float)
     times = days * 86400.0
     cheap_chain_vec = cooper_jacob(chain, times)
     cheap_pts_vec = cooper_jacob(pts, times)
-    costly_vec = cheap_pts_vec * 1.04 + 0.01  # the invented "costly" solver
+    # the invented "costly" solver: the cheap law scaled, plus a smooth discrepancy in T
+    costly_vec = cheap_pts_vec * 1.04 + 0.01 + 0.3 * (pts[:, :1] + 2.3) ** 2 * days / 30.0
     failed = {5: "failed", 11: "timed_out", 17: "output_missing"}
     run_ids = tuple(f"p{k:03d}" for k in range(m))
     outcomes, scalar_vals, vec_vals = [], [], []
@@ -109,7 +102,9 @@ def make_sample_data(seed: int = 3) -> ReportData:
 
     def resolve(pos: np.ndarray) -> tuple[np.ndarray, float, float]:
         ww = w[pos] / w[pos].sum()  # stands in for the thin stage's re-solve
-        return ww, 0.024, 0.031
+        return ww, float(sel.mmd_exact), 1.3 * float(sel.mmd_exact)
+
+    geometry = ChainGeometry(chain, rng=seed)
 
     est_s = estimate_qoi(
         scalar_vals,
@@ -120,6 +115,9 @@ def make_sample_data(seed: int = 3) -> ReportData:
         cheap_on_points=cheap_pts_vec[:, 5],
         cheap_on_chain=cheap_chain_vec[:, 5],
         resolve_weights=resolve,
+        points=pts,
+        geometry=geometry,
+        chain_ess=1600.0,
         rng=1,
     )
     est_v = estimate_qoi(
@@ -130,6 +128,9 @@ def make_sample_data(seed: int = 3) -> ReportData:
         cheap_on_points=cheap_pts_vec,
         cheap_on_chain=cheap_chain_vec,
         resolve_weights=resolve,
+        points=pts,
+        geometry=geometry,
+        chain_ess=1600.0,
         rng=2,
     )
     params = {
@@ -147,24 +148,25 @@ def make_sample_data(seed: int = 3) -> ReportData:
     }
     diag = Diagnostics(
         parameters=params,
-        n_chains=4,
-        n_draws=1000,
+        n_chains=n_chains,
+        n_draws=n_draws,
         burn_in=500,
         burn_in_rule="first half of the draws",
         acceptance=np.array([0.31, 0.29, 0.33, 0.30]),
         thresholds={"rhat": 1.01, "ess_bulk": 400.0},
         passed=True,
     )
-    return ReportData(
+    data = ReportData(
         study="spring-drawdown-demo",
         revision="r2",
         config_hash="9f2c" * 16,
-        config_text="study:\n  name: spring-drawdown-demo\n  seed: 3\n",
+        config_text="study:\n  name: spring-drawdown-demo\n  seed: 3\n  caution: Invented "
+        "data; a prediction for a real spring needs the local water authority's review.\n",
         description="Drawdown at the spring after 30 days of pumping (invented data).",
         chain_names=names,
         chain_units=units,
         chain_diagnostics=diag,
-        chain_samples=chain[:1500],
+        chain_samples=chain,
         chain_rows=chain.shape[0],
         chain_source="sampled:metropolis",
         selection=sel,
@@ -178,6 +180,26 @@ def make_sample_data(seed: int = 3) -> ReportData:
         provenance={"winnow": "0.1.0", "python": sys.version.split()[0]},
         created="2026-12-02T03:00:00Z",
     )
+    # optional attributes the report reads when present (not fields of ReportData)
+    data.chain_index = np.repeat(np.arange(n_chains), n_draws)  # type: ignore[attr-defined]
+    data.draw_index = np.tile(np.arange(n_draws), n_chains)  # type: ignore[attr-defined]
+    data.cheap_at_points = {  # type: ignore[attr-defined]
+        "drawdown_spring": cheap_pts_vec[:, 5],
+        "drawdown_history": cheap_pts_vec,
+    }
+    obs_t = np.geomspace(600.0, 5 * 86400.0, 14)
+    truth = cooper_jacob(np.array([[-2.3, -4.0]]), obs_t)[0]
+    sigma = np.full(obs_t.size, 0.02)
+    rows = chain[:: chain.shape[0] // 400]
+    data.observations = {  # type: ignore[attr-defined]
+        "x": obs_t / 86400.0,
+        "observed": truth + rng.normal(0.0, 0.02, obs_t.size),
+        "sigma": sigma,
+        "predictions": cooper_jacob(rows, obs_t),
+        "x_label": "time since pumping started (d)",
+        "y_label": "drawdown at the test well (m)",
+    }
+    return data
 
 
 if __name__ == "__main__":
