@@ -14,6 +14,17 @@ kernel, median-heuristic bandwidth, standardised coordinates, all chain rows) of
   its optimal weights; the mean over 5 independent pool draws (one draw alone moves it by
   about +-25 %, so a single pool is a noisy reference), each draw printed beside it.
 
+Weighted points: with optimal weights, how many of the chosen points carry weight
+(``w_i > 1e-6 / m``) before the replacement of points without weight (the first selection,
+as ``replace_unweighted=False`` returns it) and after, with both exact MMDs, per target, m and
+method.
+
+Repeated rows: three random-walk Metropolis chains of 20,000 rows with about 25 % acceptance
+(4-D banana-shaped density, step 1.45) thinned to 5, 10 and 30 points by greedy, swap and
+genetic selection, against exact-kernel references on random pools of 3000 distinct rows:
+plain kernel herding (equal weights) and the fully corrective greedy (optimal weights).
+``--repeats-only`` runs this section alone.
+
 Speed: N = 10^6 rows, d = 10, m = 100 (greedy, simplex weights, auto features) in a separate
 process: wall time, peak resident memory (resource.getrusage), and the ratio to the floor,
 one pass computing the features of every row with the chosen feature count (both with two
@@ -200,7 +211,7 @@ def repeats(quick: bool) -> dict:
             row.setdefault("corrective", []).append(float(np.mean(corr)))
             for meth in ("greedy", "swap", "genetic"):
                 opts = gen_opts if meth == "genetic" else {}
-                sel = thin(x, m, method=meth, rng=1, bandwidth=bw, exact_max_rows=0, **opts)
+                sel = thin(x, m, method=meth, rng=1, bandwidth=bw, exact_max_rows=n, **opts)
                 row.setdefault(meth, []).append(exact((sel.points - mean) / sd, sel.weights))
                 if meth == "greedy":
                     row.setdefault("rule", []).append(
@@ -226,6 +237,7 @@ def quality(quick: bool) -> dict:
     gen_opts = {"population": 12, "generations": 10} if quick else {}
     kern = get_kernel("gaussian")
     results = {}
+    weighted: dict[tuple, dict] = {}
     for ti, (name, make) in enumerate(TARGETS.items()):
         rng = np.random.default_rng(100 + ti)
         x = make(n, rng)
@@ -268,9 +280,27 @@ def quality(quick: bool) -> dict:
                 for meth in ("greedy", "swap", "genetic"):
                     t0 = time.perf_counter()
                     opts = gen_opts if meth == "genetic" else {}
-                    s = thin(x, m, method=meth, weights=rule, rng=1, **fixed, **opts)
+                    # simplex weights: thin() judges replacements of unweighted points by
+                    # its exact MMD too, as by default, so it runs over all rows here
+                    ex = {"exact_max_rows": n if rule == "simplex" else 0}
+                    s = thin(x, m, method=meth, weights=rule, rng=1, **{**fixed, **ex}, **opts)
                     times[f"{meth}/{rule}"] = time.perf_counter() - t0
                     res.setdefault(meth, {})[rule] = exact((s.points - mean) / sd, s.weights)
+                    if rule == "simplex":
+                        wp = s.report["weighted_points"]
+                        first = wp["first"]
+                        z_first = (x[first["indices"]] - mean) / sd
+                        before = exact(z_first, np.array(first["weights"]))
+                        weighted[(name, m, meth)] = {
+                            "before_weighted": first["n_weighted"], "before_mmd": before,
+                            "after_weighted": wp["n_weighted"], "after_m": s.m,
+                            "after_mmd": res[meth][rule], "replaced": wp["replaced"],
+                            "rounds": len(wp["rounds"]), "reason": wp["reason"],
+                        }  # fmt: skip
+                        if meth == "greedy":  # the setting that turns replacement off
+                            off = thin(x, m, method=meth, rng=1, replace_unweighted=False,
+                                       **{**fixed, **ex})  # fmt: skip
+                            assert off.indices.tolist() == first["indices"]
                     if meth in ("swap", "genetic"):
                         sel = s.report["selector"]
                         info[f"{meth}/{rule} start->end (features)"] = (
@@ -302,6 +332,16 @@ def quality(quick: bool) -> dict:
                     print(f"   {k}: {v}")
             sys.stdout.flush()
         results[name] = {"d": x.shape[1], "rows": rows}
+    print("\n== weighted points (simplex weights): chosen points with w_i > 1e-6/m, before "
+          "replacement (replace_unweighted=False) and after; exact MMD")  # fmt: skip
+    print(f"   {'target':30s} {'m':>4s} {'method':8s} {'before: weighted':>17s} {'MMD':>10s} "
+          f"{'after: weighted = returned':>27s} {'MMD':>10s} {'replaced':>9s} {'saved':>6s}"
+          "  why")  # fmt: skip
+    for (name, m, meth), v in weighted.items():
+        print(f"   {name[:30]:30s} {m:4d} {meth:8s} {v['before_weighted']:>11d} / {m:<3d} "
+              f"{v['before_mmd']:10.3e} {v['after_weighted']:>21d} / {m:<3d} {v['after_mmd']:10.3e} "
+              f"{v['replaced']:9d} {m - v['after_m']:6d}  {v['reason']}")  # fmt: skip
+    results["_weighted"] = {f"{k[0]}|{k[1]}|{k[2]}": v for k, v in weighted.items()}
     return results
 
 
@@ -375,6 +415,8 @@ def main() -> None:
     print("\n== targets")
     m_top = 30 if args.quick else 100
     for name, r in q.items():
+        if name.startswith("_"):
+            continue
         row = r["rows"][m_top]
         mmd = row["mmd"]
         ratio = mmd["greedy"]["simplex"] / mmd["random (mean)"]["uniform"]

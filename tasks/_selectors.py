@@ -42,6 +42,7 @@ References
 from __future__ import annotations
 
 import abc
+import copy
 import functools
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
@@ -106,6 +107,10 @@ class Problem:
         Standardised coordinates of the pool rows (used to find nearby rows).
     workers : int
         Threads sharing the pool's matrix-vector products (:meth:`matvec`).
+    greedy_rules : tuple of str
+        Greedy sets compared under simplex weights (``"corrective"``, ``"herding"``); the
+        thin stage's replacement of unweighted points uses the corrective rule alone (with
+        weighted rows kept, herding's equal-weight objective does not apply).
     """
 
     phi: np.ndarray
@@ -119,6 +124,7 @@ class Problem:
     features_of: Callable[[np.ndarray], np.ndarray]
     coords: np.ndarray | None = None
     workers: int = 1
+    greedy_rules: tuple[str, ...] = ("corrective", "herding")
     a: np.ndarray = field(init=False)
     q: np.ndarray = field(init=False)
     fixed_pos: np.ndarray = field(init=False)
@@ -127,11 +133,26 @@ class Problem:
     def __post_init__(self) -> None:
         self.a = (self.phi @ self.mu.astype(self.phi.dtype)).astype(np.float64)  # phi(x).mu
         self.q = np.einsum("ij,ij->i", self.phi, self.phi, dtype=np.float64)  # |phi(x)|^2
+        self._set_rows()
+
+    def _set_rows(self) -> None:
         where = {int(i): p for p, i in enumerate(self.pool)}
         self.fixed_pos = np.array([where[int(i)] for i in self.fixed], dtype=np.int64)
         # pool rows a selector may add: allowed and not already fixed
         self.pool_free = self.allowed[self.pool].copy()
         self.pool_free[self.fixed_pos] = False
+
+    def with_rows(self, fixed: np.ndarray, allowed: np.ndarray, **changes: Any) -> Problem:
+        """The same pool, features and chain with other rows kept (``fixed``, all in the
+        pool) and allowed (and other ``changes`` of plain attributes); the pool products
+        ``a`` and ``q`` are shared, not recomputed."""
+        new = copy.copy(self)
+        for name, value in changes.items():
+            setattr(new, name, value)
+        new.fixed = np.asarray(fixed, dtype=np.int64)
+        new.allowed = np.asarray(allowed, dtype=bool)
+        new._set_rows()
+        return new
 
     def matvec(self, v: np.ndarray) -> np.ndarray:
         """``phi @ v`` in the features' precision, shape (P,). On a large pool the rows are
@@ -358,10 +379,11 @@ def _greedy_positions(
             state.run(more)
         pos = np.asarray(state.chosen, dtype=np.int64)
         return pos[:m], pos[m:], {"greedy_rule": "herding"}
-    found = {
-        "corrective": _corrective_positions(problem, m, progress, extra),
-        "herding": _herding_positions(problem, m - problem.fixed.size + extra),
-    }
+    found = {}
+    if "corrective" in problem.greedy_rules or not problem.greedy_rules:
+        found["corrective"] = _corrective_positions(problem, m, progress, extra)
+    if "herding" in problem.greedy_rules:
+        found["herding"] = _herding_positions(problem, m - problem.fixed.size + extra)
     mmd = {rule: problem.weigh(problem.phi[pos[:m]])[1] for rule, pos in found.items()}
     rule = min(mmd, key=mmd.__getitem__)  # ties: the corrective set (listed first)
     pos = found[rule]

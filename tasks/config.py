@@ -325,6 +325,13 @@ class ThinSettings(_Model):
     features: int | Literal["auto"] = Field(
         "auto", description="Number of random features, or 'auto' (doubling until stable)."
     )
+    replace_unweighted: bool = Field(
+        True,
+        description="With simplex weights (greedy, swap, genetic): replace chosen points whose "
+        "optimal weight is at most 1e-6/m by the selector's next choices and re-solve, so no "
+        "costly run goes to a point without weight; points that still get none are left out "
+        "and the saved runs reported. False keeps the first selection, zero weights included.",
+    )
 
     @field_validator("features")
     @classmethod

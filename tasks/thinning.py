@@ -17,6 +17,9 @@ discrepancy (MMD, Gretton et al. 2012), without gradients of the posterior and w
    local search; genetic algorithm; random and stride baselines) picks the rows from a pool of
    candidate distinct rows;
 5. weights are uniform or the exact simplex-constrained minimiser of the feature-space MMD;
+   with the latter, chosen points left without weight (``w_i <= 1e-6 / m``) are replaced by
+   the selector's next choices until every point carries weight, or left out (and counted as
+   budget saved) when replacements get no weight either, so no costly run is wasted;
 6. the result is checked with the exact-kernel MMD against the chain (chunked; on a stated
    random subsample above ``exact_max_rows`` rows).
 
@@ -56,7 +59,15 @@ from ._features import (
 )
 from ._kernels import KERNELS, KernelName, get_kernel, median_heuristic
 from ._mmd import ExactMMD, mmd_exact
-from ._selectors import SELECTORS, GreedyState, MethodName, Problem, Selector, get_selector
+from ._selectors import (
+    SELECTORS,
+    GreedyState,
+    MethodName,
+    Problem,
+    Selector,
+    SelectorResult,
+    get_selector,
+)
 from ._weights import feature_mmd, optimal_weights
 from .records import Chain, Selection
 
@@ -87,6 +98,10 @@ _AUTO_PILOT, _AUTO_MAX_M = 2000, 400  # pilot chain rows (at least), largest pil
 _FEATURE_BYTES = 512 * 2**20  # cap on the candidate pool's feature matrix
 # independent random streams: bandwidth, feature map, pool, auto-features, exact MMD, selector
 _STREAMS = 6
+# a chosen point "carries weight" when w_i > _WEIGHT_FLOOR / m (see _refill)
+_WEIGHT_FLOOR = 1e-6
+_REFILL_ROUNDS = 8  # rounds of replacing points without weight, at most
+_REFILL_METHODS = ("greedy", "swap", "genetic")
 
 
 # ============================================================================ validation
@@ -304,6 +319,7 @@ class _Settings:
     precision: str
     workers: int
     method_options: dict[str, Any]
+    replace_unweighted: bool = True
 
 
 def _chunk_rows(chunk_size: int | None, width: int) -> int:
@@ -426,6 +442,127 @@ def _auto_level_entry(
     return entry
 
 
+def _refill(
+    problem: Problem,
+    selector: Selector,
+    result: SelectorResult,
+    w: np.ndarray,
+    mmd: float,
+    weigh: Callable[..., tuple[np.ndarray, float]],
+    exact_of: Callable[[np.ndarray, np.ndarray], float] | None,
+    m: int,
+    rng: np.random.Generator,
+    *,
+    off: str | None,
+) -> tuple[SelectorResult, np.ndarray, float, float, dict[str, Any]]:
+    """Replace chosen points that carry no weight, so that no costly run is spent on them.
+
+    A point carries weight when ``w_i > 1e-6 / m``. The simplex solver (active set) puts a
+    point on its bound at exactly 0, but a free weight can land within round-off of it; the
+    floor is far above round-off (the solver works to ~1e-11) and far below any weight that
+    matters: leaving out points of weight ``<= 1e-6 / m`` moves the weighted embedding by at
+    most ``2e-6`` in norm (``|phi| = 1``), so the MMD by at most that much.
+
+    Each round drops the free points without weight, keeps the others fixed (in their order,
+    after the selection's own fixed rows), bans the dropped rows and lets the selector choose
+    replacements from the same pool (greedy completions by the corrective rule), then
+    re-solves the weights. A round is accepted only if the feature-space MMD did not rise (it
+    cannot for greedy and swap: the kept points with their weights are still feasible) and,
+    when the exact validation is on (``exact_of``), neither did the exact-kernel MMD: where
+    random-feature noise dominates, a lower feature-space MMD can be a higher exact one.
+    Rounds go on while each accepted round leaves more points carrying weight; they stop
+    when every point carries weight, when a round is not accepted or adds no weighted point
+    (the optimal weights on this pool want no more points: in low dimensions the kernel
+    matrix of a few dozen well-placed points already has numerical rank near full, and
+    further points are redundant), when the pool has no rows left, or after
+    ``_REFILL_ROUNDS``. Free points still without weight are then left out of the selection
+    (their weights are zero to within the floor, so the weighted points are unchanged) and
+    the report says why: their runs are budget saved. Fixed rows (from ``extend``,
+    ``replace``, ``reweight``) are never dropped.
+    ``off`` (a reason) skips the replacement and only counts.
+    """
+    on = off is None
+    floor = _WEIGHT_FLOOR / m
+    k_fixed = problem.fixed.size
+    n_idle0 = int(np.count_nonzero(w <= floor))
+
+    def judge(ids: np.ndarray, w: np.ndarray) -> float:
+        return float("nan") if exact_of is None else exact_of(ids, w)
+
+    mmd_ex = judge(result.ids, w)
+    info: dict[str, Any] = {
+        "threshold": floor,
+        "rule": f"w_i > {_WEIGHT_FLOOR:g} / m",
+        "first": {"n_weighted": int(w.size - n_idle0), "n_unweighted": n_idle0,
+                  "mmd_features": mmd, "mmd_exact": mmd_ex, "ids": result.ids.copy(),
+                  "weights": w.tolist()},
+        "rounds": [],
+        "replaced": 0,
+    }  # fmt: skip
+    banned = np.zeros_like(problem.allowed)
+    reason = "every chosen point carries weight"
+    if not on and n_idle0:
+        reason = off
+    for _ in range(_REFILL_ROUNDS if on else 0):
+        idle = w <= floor
+        idle[:k_fixed] = False  # fixed rows stay whatever their weight
+        n_idle = int(np.count_nonzero(idle))
+        if n_idle == 0:
+            reason = "every chosen point carries weight"
+            break
+        ids = result.ids
+        banned[ids[idle]] = True
+        allowed = problem.allowed & ~banned
+        allowed[ids[~idle]] = True
+        trial_problem = problem.with_rows(ids[~idle], allowed, greedy_rules=("corrective",))
+        if int(np.count_nonzero(trial_problem.pool_free)) < n_idle:
+            reason = "the candidate pool has no rows left to replace them"
+            break
+        trial = selector.select(trial_problem, m, rng, None)
+        w_new, mmd_new = weigh(trial.ids)
+        ex_new = judge(trial.ids, w_new)
+        n_new = int(np.count_nonzero(w_new[k_fixed:] <= floor))
+        accepted = mmd_new <= mmd * (1.0 + 1e-9) and not ex_new > mmd_ex
+        info["rounds"].append(
+            {"dropped": n_idle, "unweighted_after": n_new, "mmd_features": mmd_new,
+             "mmd_exact": ex_new, "accepted": bool(accepted)}
+        )  # fmt: skip
+        if not accepted:
+            which = "feature-space" if mmd_new > mmd * (1.0 + 1e-9) else "exact"
+            reason = f"replacing them would have raised the {which} MMD"
+            break
+        info["replaced"] += n_idle
+        result, w, mmd, mmd_ex = trial, w_new, mmd_new, ex_new
+        if n_new >= n_idle:
+            reason = (
+                "their replacements got no weight either: the optimal weights on this pool "
+                f"use {int(np.count_nonzero(w > floor))} points"
+            )
+            break
+    else:
+        if on and np.any(w[k_fixed:] <= floor):
+            reason = f"still without weight after {_REFILL_ROUNDS} replacement rounds"
+    idle = w <= floor
+    idle[:k_fixed] = False
+    n_left = int(np.count_nonzero(idle))
+    if on and n_left:
+        # left out: weight within the floor of zero, so the weighted points are unchanged
+        # the kept weights renormalised (mass <= 1e-6 in all removed); not re-solved: on a
+        # near-singular Gram matrix a new solve may pick another optimum with other zeros
+        keep = ~idle
+        result = SelectorResult(result.ids[keep], result.population, result.info)
+        w, mmd = weigh(result.ids, w[keep] / np.sum(w[keep]))
+        mmd_ex = judge(result.ids, w)
+    info.update(
+        n_weighted=int(np.count_nonzero(w > floor)),
+        n_returned=int(result.ids.size),
+        n_fixed_unweighted=int(np.count_nonzero(w[:k_fixed] <= floor)),
+        saved_budget=int(m - result.ids.size),
+        reason=reason if not (on and n_left) else f"{n_left} point(s) left out: {reason}",
+    )
+    return result, w, mmd, mmd_ex, info
+
+
 def _run(*args: Any, **kwargs: Any) -> Selection:
     # every product here is small in one dimension (d columns, m chosen rows, one vector):
     # OpenBLAS threads lose up to 10x on those (benchmarks/bench_thin.py, BLAS threads), so
@@ -546,20 +683,26 @@ def _run_one_thread(
         workers=s.workers,
     )
     result = selector.select(problem, m, streams[5], progress)
-    ids = result.ids
     t = lap("select", t)
 
-    pos_in_pool = np.searchsorted(pool, ids)
-    in_pool = (pos_in_pool < pool.size) & (pool[np.minimum(pos_in_pool, pool.size - 1)] == ids)
-    phi_s = np.empty((m, fmap.width), dtype=np.float64)
-    if np.any(in_pool):
-        phi_s[in_pool] = phi_pool[pos_in_pool[in_pool]]
-    if not np.all(in_pool):
-        phi_s[~in_pool] = features_of(ids[~in_pool])
-    w, mmd_feat = problem.weigh(phi_s)
+    def weigh(ids: np.ndarray, w: np.ndarray | None = None) -> tuple[np.ndarray, float]:
+        """Weights by the rule (or ``w`` as given) and the feature-space MMD of ``ids``."""
+        pos_in_pool = np.searchsorted(pool, ids)
+        in_pool = (pos_in_pool < pool.size) & (pool[np.minimum(pos_in_pool, pool.size - 1)] == ids)
+        phi_s = np.empty((ids.size, fmap.width), dtype=np.float64)
+        if np.any(in_pool):
+            phi_s[in_pool] = phi_pool[pos_in_pool[in_pool]]
+        if not np.all(in_pool):
+            phi_s[~in_pool] = features_of(ids[~in_pool])
+        if w is not None:
+            return w, feature_mmd(phi_s, mu, w)
+        return problem.weigh(phi_s)
+
+    w, mmd_feat = weigh(result.ids)
     t = lap("weights", t)
 
-    # exact validation -----------------------------------------------------------------------
+    # exact validation target ------------------------------------------------------------------
+    exact_of: Callable[[np.ndarray, np.ndarray], float] | None = None
     if s.exact_max_rows > 0:
         if prep.n_finite <= s.exact_max_rows:
             target_ids, target_w = np.arange(prep.n_distinct), prep.counts.astype(np.float64)
@@ -572,11 +715,39 @@ def _run_one_thread(
         exact = ExactMMD(
             prep.standardised(target_ids), target_w, kern, bandwidth, progress=progress
         )
-        mmd_ex = exact(prep.standardised(ids), w)
+        _ = exact.self_term  # once, before any set is judged
+
+        def exact_of(ids: np.ndarray, w: np.ndarray) -> float:
+            return exact(prep.standardised(ids), w)
+
         exact_rows = int(min(prep.n_finite, s.exact_max_rows))
     else:
-        mmd_ex, exact_rows, exact_rule = float("nan"), 0, "skipped (exact_max_rows=0)"
+        exact_rows, exact_rule = 0, "skipped (exact_max_rows=0)"
     t = lap("exact_mmd", t)
+
+    # points without weight ------------------------------------------------------------------
+    off = None
+    if s.weights != "simplex":
+        off = "uniform weights: every point carries weight 1/m"
+    elif s.method not in _REFILL_METHODS:
+        off = f"not replaced for the {s.method!r} baseline"
+    elif not s.replace_unweighted:
+        off = "not replaced (replace_unweighted=False)"
+    refiller = selector
+    if s.method == "genetic":
+        # a replacement round searches only the few replaced genes: one stagnation window of
+        # generations (``patience``) is its cap, not the whole run's
+        opts = selector.options
+        refiller = get_selector(
+            "genetic", **{**opts, "generations": min(opts["generations"], opts["patience"])}
+        )
+    result, w, mmd_feat, mmd_ex, weighted_info = _refill(
+        problem, refiller, result, w, mmd_feat, weigh, exact_of, m, streams[5], off=off
+    )
+    ids = result.ids
+    first = weighted_info["first"]
+    first["indices"] = prep.first[first.pop("ids")].astype(np.int64).tolist()  # rows as given
+    t = lap("replace_unweighted", t)
     timings["total"] = time.perf_counter() - t_start
 
     indices = prep.first[ids].astype(np.int64)
@@ -585,6 +756,9 @@ def _run_one_thread(
         population = [(prep.first[p].astype(np.int64), float(v)) for p, v in result.population]
     report: dict[str, Any] = {
         "purpose": purpose,
+        "budget": int(m),
+        "weighted_points": weighted_info,
+        "replace_unweighted": s.replace_unweighted,
         "n_rows": int(x.shape[0]),
         "n_nonfinite_dropped": prep.n_dropped,
         "n_finite": prep.n_finite,
@@ -642,6 +816,7 @@ def _settings(
     features_tol: Any,
     precision: Any,
     workers: Any,
+    replace_unweighted: Any = True,
     method_options: dict[str, Any],
 ) -> _Settings:
     get_kernel(kernel)
@@ -649,6 +824,8 @@ def _settings(
     get_selector(method, **method_options)  # unknown options fail here, before any work
     if not isinstance(features_tol, int | float) or not (0 < features_tol < 1):
         raise ValueError(f"features_tol must be a number in (0, 1), got {features_tol!r}")
+    if not isinstance(replace_unweighted, bool | np.bool_):
+        raise TypeError(f"replace_unweighted must be True or False, got {replace_unweighted!r}")
     return _Settings(
         kernel=kernel,
         bandwidth=_validate_bandwidth(bandwidth),
@@ -667,6 +844,7 @@ def _settings(
         precision=_validate_choice("precision", precision, ("single", "double")),
         workers=_validate_int("workers", workers, 1),
         method_options=method_options,
+        replace_unweighted=bool(replace_unweighted),
     )
 
 
@@ -689,6 +867,7 @@ def thin(
     features_tol: float = 0.05,
     precision: Literal["single", "double"] = "single",
     workers: int = 2,
+    replace_unweighted: bool = True,
     rng: np.random.Generator | int | None = None,
     progress: Progress | None = None,
     **method_options: Any,
@@ -735,6 +914,13 @@ def thin(
         Precision of feature values (sums are float64 either way).
     workers : int
         Threads for the streaming pass over the chain (the result does not depend on it).
+    replace_unweighted : bool
+        With simplex weights and the greedy, swap or genetic selector: chosen points whose
+        optimal weight is at most ``1e-6 / m`` are replaced by the selector's next choices
+        (the other points kept), the weights re-solved, until every point carries weight;
+        points that still carry none are left out (``Selection.m < budget``) and the report's
+        ``weighted_points`` says how many carry weight and why. False keeps the first
+        selection as it is, zero weights included.
     rng : int or Generator, optional
         Seed; the same input, settings and seed give the same selection.
     progress : callable, optional
@@ -749,7 +935,9 @@ def thin(
     Selection
         Indices into the rows of ``samples`` as given, weights, points in user units, both
         MMDs and a report (rows dropped, distinct rows, standardisation, bandwidth rule,
-        feature-count history, timings).
+        feature-count history, ``weighted_points``: how many points carry weight, the
+        replacement rounds, the budget saved and why; timings). ``m`` is ``budget`` unless
+        points without weight could not be replaced (``report["weighted_points"]``).
 
     References
     ----------
@@ -773,6 +961,7 @@ def thin(
         features_tol=features_tol,
         precision=precision,
         workers=workers,
+        replace_unweighted=replace_unweighted,
         method_options=method_options,
     )
     return _run(x, m, s, rng, progress)
@@ -797,6 +986,7 @@ def _settings_from(selection: Selection, method: str | None, overrides: dict[str
         features_tol=rep.get("auto_features_tol", 0.05),
         precision=rep.get("precision", "single"),
         workers=rep.get("workers", 2),
+        replace_unweighted=rep.get("replace_unweighted", True),
     )
     method_options = {k: v for k, v in overrides.items() if k not in opts}
     opts.update({k: v for k, v in overrides.items() if k in opts})

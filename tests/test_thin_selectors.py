@@ -109,10 +109,13 @@ def test_selector_contract(chain, method, rule):
 
 
 def test_optimised_selectors_beat_baselines_and_keep_their_start(chain):
+    # the selectors themselves: no replacement of unweighted points afterwards (that step is
+    # tested in test_thin_weighted.py)
     res = {
-        m: thin(chain, 20, method=m, rng=3, **FAST, **(GENETIC_FAST if m == "genetic" else {}))
+        m: thin(chain, 20, method=m, rng=3, replace_unweighted=False, **FAST,
+                **(GENETIC_FAST if m == "genetic" else {}))
         for m in SELECTORS
-    }
+    }  # fmt: skip
     for base in ("random", "stride"):
         assert res["greedy"].mmd_features < res[base].mmd_features
     g = res["greedy"].mmd_features
@@ -251,11 +254,18 @@ def test_invariants_on_random_chains(n, d, reps, m_frac, method, rule, kernel, s
     opts = {"population": 4, "generations": 2} if method == "genetic" else {}
     sel = thin(x, m, method=method, weights=rule, kernel=kernel, rng=seed, n_features=32,
                exact_max_rows=500, **opts)  # fmt: skip
-    assert sel.m == m and np.unique(sel.indices).size == m
-    assert np.unique(sel.points, axis=0).shape[0] == m  # distinct values, not only rows
+    wp = sel.report["weighted_points"]
+    # points without weight that could not be replaced are left out, and counted
+    assert sel.m == m - wp["saved_budget"] == wp["n_returned"]
+    assert np.unique(sel.indices).size == sel.m
+    if rule == "simplex" and method in ("greedy", "swap", "genetic"):
+        assert np.all(sel.weights > 1e-6 / m) and wp["n_weighted"] == sel.m
+    else:
+        assert sel.m == m
+    assert np.unique(sel.points, axis=0).shape[0] == sel.m  # distinct values, not only rows
     assert np.all(sel.weights >= 0) and abs(sel.weights.sum() - 1) < 1e-9
     np.testing.assert_array_equal(sel.points, x[sel.indices])
-    assert sel.report["n_distinct"] == n and sum(sel.report["multiplicity"]) == m * reps
+    assert sel.report["n_distinct"] == n and sum(sel.report["multiplicity"]) == sel.m * reps
     assert np.isfinite(sel.mmd_exact) and sel.mmd_exact >= 0 and sel.mmd_features >= 0
     if m == n:  # every distinct row chosen: simplex weights reproduce the chain exactly
         if rule == "simplex":
