@@ -3,20 +3,21 @@
 The collect stage holds ``m`` costly-run values ``y_i`` of a QoI at the chosen points, with
 weights ``w_i`` (non-negative, summing to one) that make the weighted points stand in for the
 whole posterior chain. From them it reports the weighted posterior-predictive summaries (mean,
-sd, quantiles, exceedance probabilities) and four separately labelled sources of error of the
-mean:
+sd, quantiles, exceedance probabilities), and, given the chain's coordinates, one headline
+answer per QoI from the error model of :mod:`winnow.tasks._uncertainty` with labelled
+standard errors:
 
-``thinning_gap``
-    Signed gap ``sum_i w_i c(x_i) - mean_chain c`` of a cheap prediction ``c`` between the
-    chosen weighted points and the whole chain: how far thinning alone moves a mean, measured
-    where it can be measured exactly.
-``control_variate_se``
-    Standard error of the multi-fidelity control-variate estimate
-    ``mean_chain c + sum_i w_i (y_i - c(x_i))`` (coefficient one, the "discrepancy" form).
-``bootstrap_se``
-    Resampling standard error of the weighted mean (bootstrap of (value, weight) pairs).
+``thinning_se``
+    The error model's standard error of the headline estimate against the chain mean
+    (``sigma x MMD`` under a process fitted to the run values).
 ``chain_mcse``
     Monte Carlo error of the chain itself, ``sd / sqrt(ESS)``.
+``total_se``
+    Both in quadrature: the standard error for the posterior expectation.
+
+The cheap model's gap ``sum_i w_i c(x_i) - mean_chain c`` is reported as a check of the
+selection (``details["cheap_gap"]``), not as an error term: the multi-fidelity estimate
+applies it as its correction.
 
 References
 ----------
@@ -45,6 +46,7 @@ import numpy.typing as npt
 
 from winnow.tasks._headline import (
     LEVEL,
+    clustering_flag,
     component_headline,
     forecast,
     probability_interval,
@@ -65,10 +67,9 @@ __all__ = [
 ResolveWeights = Callable[[np.ndarray], tuple[npt.ArrayLike, float, float]]
 
 UNCERTAINTY_LABELS: dict[str, str] = {
-    "thinning_gap": "Thinning gap, cheap model (weighted points minus whole chain)",
-    "control_variate_se": "Standard error of the multi-fidelity estimate",
-    "bootstrap_se": "Bootstrap standard error of the weighted mean",
-    "chain_mcse": "Monte Carlo error of the chain (sd / sqrt(ESS))",
+    "thinning_se": "Standard error of thinning (error model: sigma x MMD, against the chain mean)",
+    "chain_mcse": "Monte Carlo standard error of the chain (sd / sqrt(ESS))",
+    "total_se": "Total standard error for the posterior expectation (both, in quadrature)",
 }
 
 
@@ -444,8 +445,9 @@ def estimate_qoi(
         Cheap prediction at every chain row. Together with ``cheap_on_points`` it enables
         ``thinning_gap`` and the control-variate estimate.
     chain_ess : float or array_like, optional
-        Effective sample size of the chain for the mean of the cheap prediction (or of the
-        QoI). When omitted and ``cheap_on_chain`` is given it is computed by
+        Effective sample size of the chain (e.g. the smallest bulk ESS of the parameters).
+        With ``cheap_on_chain`` the smaller of it and the cheap prediction's own ESS is used;
+        when omitted and ``cheap_on_chain`` is given the latter is computed by
         :func:`chain_ess` (Kish ESS of ``chain_weights`` for a weighted chain).
     chain_weights : array_like, shape (n,), optional
         Weights of the chain rows (uniform when omitted).
@@ -614,6 +616,11 @@ def estimate_qoi(
         if not np.all(ess_c > 0):
             raise ValueError(f"chain_ess: expected positive values, got {chain_ess!r}")
         ess_basis = "given"
+        if cc is not None and chain_weights is None and cc.shape[0] >= 8:
+            # the QoI's own autocorrelation is unknown: take the smaller of the given ESS
+            # (e.g. the parameters') and the cheap prediction's, not the more optimistic
+            ess_c = np.minimum(ess_c, _chain_ess(cc, chain_index))
+            ess_basis = "smaller of the given ESS and the cheap prediction's split-chain ESS"
     elif cc is not None and chain_weights is not None:
         ess_c = np.full(shape, kish_ess(cw))
         ess_basis = "Kish ESS of the chain weights"
@@ -668,6 +675,14 @@ def estimate_qoi(
         ess_points, qs, quant, th, level, forecast, gen,
     )
     if headline is not None:
+        rep = None
+        if pos.size < m and geometry is not None:
+            failed = np.ones(m, dtype=bool)
+            failed[pos] = False
+            rep = clustering_flag(geometry.standardise(points), failed, gen)
+        if rep is not None:
+            headline["flags"] = sorted([*headline["flags"], rep])
+            headline["reliable"] = False
         uncertainty["thinning_se"] = np.asarray(headline.pop("_thinning_se"))
         uncertainty["total_se"] = np.asarray(headline.pop("_total_se"))
         if control is not None:
@@ -720,24 +735,20 @@ def _headlines(
             cheap_points=cpf[:, j] if usable else None, cheap_chain_mean=cmean,
             chain_mcse=float(mcf[j]), level=level,
         )
-        probs = {}
-        for t in th:
-            ci = (cpf[:, j] > t).astype(float) if usable else None
-            cm = float(cw @ (ccf[:, j] > t)) if usable else None
-            probs[float(t)] = probability_interval(
-                pts, (yf[:, j] > t).astype(float), w, geometry, cheap_indicator_points=ci,
-                cheap_indicator_mean=cm, ess_points=ess_points,
-                chain_ess=None if essf is None else float(essf[j]), level=level,
+        ess_j = None if essf is None else float(essf[j])
+        probs = {
+            float(t): probability_interval(
+                (yf[:, j] > t).astype(float), w, ess_points=ess_points, chain_ess=ess_j,
+                level=level,
             )
+            for t in th
+        }
         qint = {}
         for q in qs:
             est_q = float(np.ravel(quant[float(q)])[j])
-            ci = (cpf[:, j] <= est_q).astype(float) if usable else None
-            cm = float(cw @ (ccf[:, j] <= est_q)) if usable else None
             cdf = probability_interval(
-                pts, (yf[:, j] <= est_q).astype(float), w, geometry,
-                cheap_indicator_points=ci, cheap_indicator_mean=cm, ess_points=ess_points,
-                chain_ess=None if essf is None else float(essf[j]), level=level,
+                (yf[:, j] <= est_q).astype(float), w, ess_points=ess_points, chain_ess=ess_j,
+                level=level,
             )
             qint[float(q)] = quantile_interval(yf[:, j], w, float(q), est_q, cdf, level)
         h["exceedance_intervals"] = {t: v["interval"] for t, v in probs.items()}

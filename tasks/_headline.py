@@ -10,9 +10,9 @@ states:
   posterior expectation (both, added in quadrature), t intervals on the error model's
   degrees of freedom;
 * whether the model looks reliable (its flags), and the cheap model's check;
-* intervals of exceedance probabilities (the error model applied to the indicator
-  ``1{Q > t}``, with the cheap model's indicator as the covariate) and of quantiles (by
-  inverting the interval of the CDF at the estimated quantile, Woodruff 1952).
+* intervals of exceedance probabilities (Wilson's score interval at the effective size of
+  the weights and the chain) and of quantiles (by inverting the interval of the CDF at the
+  estimated quantile, Woodruff 1952).
 """
 
 from __future__ import annotations
@@ -24,9 +24,58 @@ from scipy import stats
 
 from ._uncertainty import ChainGeometry, ErrorFit, fit_error_model, forecast_errors
 
-__all__ = ["LEVEL", "component_headline", "probability_interval", "quantile_interval"]
+__all__ = [
+    "LEVEL",
+    "component_headline",
+    "probability_interval",
+    "quantile_interval",
+    "clustering_flag",
+]
 
 LEVEL = 0.95
+
+
+CLUSTER_P = 0.01  # familywise false-alarm rate of the clustering check under random failures
+
+
+def clustering_flag(
+    z: np.ndarray, failed: np.ndarray, rng: Any, n_perm: int = 999
+) -> str | None:
+    """A flag when the failed runs cluster in one region of the posterior.
+
+    Test: the squared MMD (Gaussian kernel, median-distance bandwidth, standardised
+    coordinates) between the failed points and all chosen points, against its distribution
+    when the same number of failures falls on chosen points at random (a permutation test,
+    Gretton et al. 2012, sec. 3.3 for the MMD; the p-value counts the observed labelling,
+    common practice). Failures at random pass it in 99 % of studies; failures where the QoI is
+    large, or in one corner of the parameters, do not, and the error model cannot know what
+    the missing region holds (the coverage benchmark's "not at random" cells).
+    """
+    failed = np.asarray(failed, dtype=bool)
+    k, m = int(failed.sum()), failed.size
+    if k < 2 or m - k < 2:
+        return None
+    d2 = ((z[:, None, :] - z[None, :, :]) ** 2).sum(-1)
+    iu = np.triu_indices(m, 1)
+    med2 = float(np.median(d2[iu])) or 1.0
+    K = np.exp(-d2 / (2 * med2))
+    gen = np.random.default_rng(rng)
+    masks = np.zeros((n_perm + 1, m))
+    masks[0, failed] = 1.0
+    for i in range(1, n_perm + 1):
+        masks[i, gen.choice(m, k, replace=False)] = 1.0
+    a = masks / k
+    u = np.full(m, 1.0 / m)
+    stat = np.einsum("pi,ij,pj->p", a, K, a) - 2 * a @ (K @ u)  # + const (u K u)
+    p = float(np.mean(stat >= stat[0] - 1e-12))
+    if p < CLUSTER_P:
+        return (
+            f"failed runs cluster in one region of the posterior ({k} of {m}; permutation "
+            f"test against random failures, p = {p:.3f} < {CLUSTER_P}): the error model cannot "
+            "know what the missing region holds; fix the solver and run `winnow rerun`, or "
+            "`winnow rerun --replace`"
+        )
+    return None
 
 
 def _t(level: float, dof: int) -> float:
@@ -76,51 +125,37 @@ def component_headline(
 
 
 def probability_interval(
-    points: np.ndarray,
     indicator: np.ndarray,
     w: np.ndarray,
-    geo: ChainGeometry,
     *,
-    cheap_indicator_points: np.ndarray | None,
-    cheap_indicator_mean: float | None,
     ess_points: float,
     chain_ess: float | None,
     level: float = LEVEL,
 ) -> dict[str, Any]:
     """Estimate and interval of ``P(event)`` from the event's indicator at the points.
 
-    When every point agrees (all inside or all outside the event), the process scale fitted
-    to the indicator is zero and says nothing; the interval is then the one the weights'
-    effective size ``n_e`` allows: ``[0, 1 - ((1 - level) / 2)^(1 / n_e)]`` (or its mirror),
-    the exact binomial bound for no event in ``n_e`` draws (Clopper & Pearson 1934).
+    The indicator of an event is a step function, which the smooth error model of the mean
+    does not describe (the coverage benchmark saw its intervals cover 25-55 % for the
+    exceedance of a smooth QoI). The interval is instead the one the weights' effective size
+    allows: Wilson's score interval (Wilson 1927) for the weighted proportion with
+    ``n = 1 / (1 / n_e + 1 / ESS_chain)`` draws, ``n_e`` the Kish effective size of the
+    weights and ``ESS_chain`` the chain's (its Monte Carlo error of the same proportion).
+    It treats the points as ``n_e`` random draws: for optimised points, conservative.
     """
     ind = np.asarray(indicator, dtype=np.float64)
-    p_plain = float(w @ ind)
+    p = float(w @ ind)
     n_e = max(float(ess_points), 1.0)
-    alpha = 1.0 - level
-    if np.ptp(ind[w > 0]) == 0.0:
-        edge = 1.0 - (alpha / 2.0) ** (1.0 / n_e)
-        lo, hi = (0.0, edge) if p_plain < 0.5 else (1.0 - edge, 1.0)
-        return {
-            "estimate": p_plain, "interval": (lo, hi), "se": float("nan"), "rule":
-            "weighted mean", "basis": f"every point agrees; exact bound for {n_e:.1f} "
-            "effective draws", "flags": [],
-        }
-    fit = fit_error_model(
-        points, ind, w, geo,
-        cheap_points=cheap_indicator_points, cheap_chain_mean=cheap_indicator_mean,
-    )
-    p = float(np.clip(fit.estimate, 0.0, 1.0))
-    mc = np.sqrt(p * (1 - p) / chain_ess) if chain_ess else 0.0
-    se = float(np.hypot(fit.se, mc))
-    half = _t(level, fit.dof) * se if np.isfinite(se) else float("nan")
+    n = 1.0 / (1.0 / n_e + (1.0 / chain_ess if chain_ess else 0.0))
+    z = float(stats.norm.ppf(0.5 + level / 2.0))
+    denom = 1.0 + z * z / n
+    centre = (p + z * z / (2 * n)) / denom  # Wilson (1927) score interval
+    half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / denom
     return {
         "estimate": p,
-        "interval": (max(0.0, p - half), min(1.0, p + half)),
-        "se": se,
-        "rule": fit.rule,
-        "basis": "error model of the indicator (with the chain's Monte Carlo error)",
-        "flags": list(fit.flags),
+        "interval": (max(0.0, centre - half), min(1.0, centre + half)),
+        "n": n,
+        "basis": f"Wilson score interval at {n:.1f} effective draws (Kish size of the weights "
+        "combined with the chain's ESS)",
     }
 
 
@@ -157,5 +192,14 @@ def quantile_interval(
 def forecast(
     fit: ErrorFit, points: np.ndarray, w: np.ndarray, geo: ChainGeometry, rng: Any
 ) -> dict[int, float]:
-    """Stated thinning error with more points (see :func:`forecast_errors`)."""
-    return forecast_errors(fit, points, w, geo, rng=rng)
+    """Stated thinning error with more points (see :func:`forecast_errors`).
+
+    The greedy extension's variances use Bayesian-quadrature weights; they are turned into a
+    forecast of the stated error by their ratio to the same computation with no extra
+    point, so that ``k = 0`` reproduces the error stated now.
+    """
+    raw = forecast_errors(fit, points, w, geo, (0, 5, 10, 20, 50), rng=rng)
+    base = raw.pop(0)
+    if not np.isfinite(base) or base <= 0 or not np.isfinite(fit.se):
+        return {k: float("nan") for k in raw}
+    return {k: float(fit.se * v / base) for k, v in raw.items()}

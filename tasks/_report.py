@@ -37,7 +37,7 @@ from winnow.tasks._report_plots import (
     qoi_plot_png,
     trace_plot_png,
 )
-from winnow.tasks._uncertainty import MARGIN
+from winnow.tasks._uncertainty import margin
 from winnow.tasks.records import QoIEstimate
 
 if TYPE_CHECKING:
@@ -361,13 +361,19 @@ def _why(comp: dict[str, Any], units: str) -> str:
     if len(cands) == 1:
         why = "the only form available (no cheap model for this quantity)"
     elif rule == "weighted mean":
-        why = f"no multi-fidelity form stated less than {MARGIN:.0%} of the weighted mean's error"
+        alts = [c for r, c in cands.items() if r != "weighted mean"]
+        dof = min(int(c.get("dof", 1)) for c in alts)
+        why = (
+            f"no multi-fidelity form stated less than {margin(dof):.0%} of the weighted mean's "
+            f"error (the margin exp(-2/sqrt(dof)) at {dof} degrees of freedom)"
+        )
     else:
         base = (cands.get("weighted mean") or {}).get("se")
+        dof = int(cands[rule].get("dof", 1))
         why = (
             f"it states {format_number(cands[rule].get('se'))}{_sp(units)}, less than "
-            f"{MARGIN:.0%} of the weighted mean's {format_number(base)}{_sp(units)}, and the "
-            "least of the forms"
+            f"{margin(dof):.0%} of the weighted mean's {format_number(base)}{_sp(units)} (the "
+            f"margin exp(-2/sqrt(dof)) at {dof} degrees of freedom), and the least of the forms"
         )
     return (
         f"{rule} ({_RULE_NAMES.get(rule, rule)}), chosen because {why}. Stated thinning "
@@ -465,8 +471,8 @@ def _answer(data: ReportData, est: QoIEstimate) -> dict[str, Any]:
     else:
         out["estimator"] = (
             f"Estimator per {axis['name']}: {', '.join(rules)}; each chosen as the plain "
-            f"weighted mean unless a multi-fidelity form states less than {MARGIN:.0%} of its "
-            "error (see the table in the section below)."
+            f"weighted mean unless a multi-fidelity form states less than exp(-2/sqrt(dof)) "
+            "of its error (see the table in the section below)."
         )
     return out
 
@@ -1395,9 +1401,11 @@ def _qoi_blocks(data: ReportData, est: QoIEstimate, t: dict[str, list]) -> list[
             ("table", _estimator_display(data, est, t)),
             (
                 "note",
-                f"The plain weighted mean is used unless another form states less than "
-                f"{MARGIN:.0%} of its error; then the one stating the least. Coefficient 0: "
-                "weighted mean; 1: discrepancy form; fitted: regression form.",
+                "The plain weighted mean is used unless another form states less than "
+                "exp(-2/sqrt(dof)) of its error (0.51 at 9 degrees of freedom, 0.82 at 99), a "
+                "margin against the noise of errors fitted to few values; then the one "
+                "stating the least. Coefficient 0: weighted mean; 1: discrepancy form; "
+                "fitted: regression form.",
             ),
         ]
         cheap = _cheap_display(data, est, t)

@@ -45,7 +45,8 @@ Checks that flag the model
   trusted; with fewer than two the error is not estimable (never reported as zero).
 
 The coefficient ``b`` is chosen among ``0``, ``1`` and ``beta_hat``: the plain mean unless
-another form states less than ``MARGIN`` (0.7) of its error, then the one stating the least;
+another form states less than :func:`margin` of its error (a margin against the noise of
+stated errors fitted to few values), then the one stating the least;
 the stated errors of all three are returned so that the choice can be seen.
 
 References
@@ -77,7 +78,7 @@ __all__ = [
     "ERROR_KERNELS",
     "ChainGeometry",
     "ErrorFit",
-    "MARGIN",
+    "margin",
     "MIN_POINTS",
     "fit_error_model",
     "forecast_errors",
@@ -451,21 +452,28 @@ def weighted_rule_error(
     return _rule_sd(fit, geo, kernel, x, w)[0]
 
 
-MARGIN = 0.7  # an alternative to the plain weighted mean must state at most this fraction
-# of its error: the stated errors of a few points are themselves noisy, and at budget 10 the
-# coverage benchmark saw the regression form chosen on a noisy 10-20 % advantage lose to the
-# plain mean when the cheap model was poorly correlated (benchmarks/bench_coverage.py)
+def margin(dof: int) -> float:
+    """Fraction of the plain mean's stated error an alternative must stay below.
+
+    A stated sd fitted to ``dof`` residual degrees of freedom has a relative noise of about
+    ``1 / sqrt(2 dof)`` (the chi distribution; common practice), so the log-ratio of two has
+    about ``1 / sqrt(dof)``; an alternative is taken only when it states less error by two of
+    those: ``exp(-2 / sqrt(dof))`` (0.51 at 9, 0.69 at 29, 0.82 at 99 degrees of freedom).
+    A fixed margin of 0.7 let the regression form win on noise at budget 10 when the cheap
+    model was poorly correlated (benchmarks/bench_coverage.py).
+    """
+    return float(np.exp(-2.0 / np.sqrt(max(int(dof), 1))))
 
 
 def _choose(candidates: dict[str, dict[str, float]]) -> str:
     """The rule of (1): the plain mean unless another states clearly less error."""
     if "weighted mean" not in candidates:
         return min(candidates, key=lambda k: candidates[k]["se"])
-    base = candidates["weighted mean"]["se"]
+    base = candidates["weighted mean"]
     alt = {k: v for k, v in candidates.items() if k != "weighted mean"}
     if alt:
         best = min(alt, key=lambda k: alt[k]["se"])
-        if alt[best]["se"] < MARGIN * base:
+        if alt[best]["se"] < margin(int(alt[best]["dof"])) * base["se"]:
             return best
     return "weighted mean"
 
@@ -639,6 +647,11 @@ def forecast_errors(
     free = np.arange(cur.shape[0], both.shape[0])
     out: dict[int, float] = {}
     kmax = max(extra, default=0)
+    if 0 in extra:
+        K = G[np.ix_(idx, idx)]
+        out[0] = float(
+            fit.sigma * np.sqrt(max(c - float(mean[idx] @ np.linalg.solve(K, mean[idx])), 0.0))
+        )
     for step in range(1, kmax + 1):
         K = G[np.ix_(idx, idx)]
         cf = linalg.cho_factor(K, lower=True, check_finite=False)

@@ -438,8 +438,8 @@ def collect_stage(
                 thresholds=tuple(q.thresholds),
                 cheap_on_points=None if on_points is None else on_points[order],
                 cheap_on_chain=on_chain,
-                # with a cheap prediction, its own ESS over the chains is the relevant one
-                chain_ess=None if on_chain is not None else ess,
+                # the smaller of the parameters' ESS and the cheap prediction's is used
+                chain_ess=ess,
                 chain_index=chain.chain_index,
                 resolve_weights=_weights_resolver(chain, selection, order),
                 bootstrap=config.collect.bootstrap,

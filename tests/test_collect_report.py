@@ -301,7 +301,7 @@ def test_answer_names_the_estimator_why_and_the_candidates(data):
     ("rule", "ses", "expected"),
     [
         ("weighted mean", {"weighted mean": 1.0, "discrepancy": 0.8}, "no multi-fidelity form"),
-        ("discrepancy", {"weighted mean": 1.0, "discrepancy": 0.5}, "less than 70% of"),
+        ("discrepancy", {"weighted mean": 1.0, "discrepancy": 0.4}, "less than 47% of"),
         ("weighted mean", {"weighted mean": 1.0}, "the only form available"),
     ],
 )
@@ -315,7 +315,7 @@ def test_why_an_estimator_was_chosen(rule, ses, expected):
     why = R._why(comp, "m")
     assert expected in why
     if rule == "discrepancy":  # the numbers the choice rests on
-        assert "it states 0.5 m, less than 70% of the weighted mean's 1 m" in why
+        assert "it states 0.4 m, less than 47% of the weighted mean's 1 m" in why
 
 
 def test_not_reliable_box_lists_every_flag(data, tmp_path):

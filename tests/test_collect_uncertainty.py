@@ -248,3 +248,88 @@ def test_bad_kernel_names_the_choices():
     geo = ChainGeometry(np.random.default_rng(0).normal(size=(50, 1)), rng=0)
     with pytest.raises(ValueError, match=r"kernel: expected one of \['gaussian', 'matern52'\]"):
         fit_error_model(np.zeros((3, 1)), [1.0, 2.0, 3.0], np.ones(3) / 3, geo, kernel="rbf")
+
+
+def test_probability_interval_is_wilson_at_the_effective_size():
+    # Oracle: scipy.stats.binomtest(...).proportion_ci(method="wilson") (Wilson 1927); equal
+    # weights on 10 points are 10 effective draws, no chain error.
+    from winnow.tasks._headline import probability_interval
+
+    ind = np.array([1, 0, 0, 1, 0, 0, 0, 1, 0, 0], dtype=float)
+    got = probability_interval(ind, np.full(10, 0.1), ess_points=10.0, chain_ess=None)
+    ref = stats.binomtest(3, 10).proportion_ci(0.95, method="wilson")
+    assert got["estimate"] == pytest.approx(0.3)
+    np.testing.assert_allclose(got["interval"], (ref.low, ref.high), rtol=1e-12)
+    # the chain's ESS combines as 1/n = 1/n_e + 1/ESS: 10 and 10 give 5 draws
+    half = probability_interval(ind, np.full(10, 0.1), ess_points=10.0, chain_ess=10.0)
+    assert half["n"] == pytest.approx(5.0)
+
+
+def test_quantile_interval_inverts_the_cdf_interval():
+    # Woodruff (1952): the q-quantile interval is [Q(q - h_lo), Q(q + h_hi)] with Q the
+    # weighted quantile function; an end outside the plotting positions is unbounded.
+    from winnow.tasks._estimates import weighted_quantile
+    from winnow.tasks._headline import quantile_interval
+
+    y = np.arange(20, dtype=float)
+    w = np.full(20, 0.05)
+    cdf = {"estimate": 0.5, "interval": (0.4, 0.62)}
+    lo, hi = quantile_interval(y, w, 0.5, float(weighted_quantile(y, w, 0.5)), cdf)
+    assert lo == pytest.approx(float(weighted_quantile(y, w, 0.4)))
+    assert hi == pytest.approx(float(weighted_quantile(y, w, 0.62)))
+    lo, hi = quantile_interval(y, w, 0.05, 0.5, {"estimate": 0.05, "interval": (0.0, 0.2)})
+    assert lo == -np.inf and np.isfinite(hi)
+
+
+def test_margin_values():
+    from winnow.tasks._uncertainty import margin
+
+    assert margin(9) == pytest.approx(np.exp(-2 / 3))
+    assert margin(9) < margin(29) < margin(99) < 1.0
+
+
+def test_clustered_failures_flag_the_estimate():
+    # Failures where x0 is largest cluster in one region: the permutation test flags them.
+    # Failures at random positions are flagged with probability 1 % by construction of the
+    # test (p < 0.01); over 40 random draws, more than 3 flags has probability 0.0008
+    # (scipy binomial), so the bound below fails a correct test rarely.
+    rng = np.random.default_rng(9)
+    chain = rng.normal(size=(2000, 2))
+    geo = ChainGeometry(chain, rng=0)
+    idx = rng.choice(2000, 30, replace=False)
+    vals = np.sin(chain[idx, 0])
+    top = np.argsort(chain[idx, 0])[-6:]
+    clustered = vals.copy()
+    clustered[top] = np.nan
+    est = estimate_qoi(
+        clustered, np.full(30, 1 / 30), name="q", points=chain[idx], geometry=geo,
+        forecast=False, rng=1,
+    )
+    assert not est.headline["reliable"]
+    assert any("cluster in one region" in f for f in est.headline["flags"])
+    flagged = 0
+    for k in range(40):
+        g = np.random.default_rng(100 + k)
+        rand = vals.copy()
+        rand[g.choice(30, 6, replace=False)] = np.nan
+        e = estimate_qoi(
+            rand, np.full(30, 1 / 30), name="q", points=chain[idx], geometry=geo,
+            forecast=False, rng=k, quantiles=(),
+        )
+        flagged += any("cluster in one region" in f for f in e.headline["flags"])
+    assert stats.binom.sf(3, 40, 0.01) < 0.001
+    assert flagged <= 3
+
+
+def test_forecast_starts_at_the_stated_error():
+    from winnow.tasks._headline import forecast
+
+    rng = np.random.default_rng(10)
+    chain = rng.normal(size=(3000, 2))
+    geo = ChainGeometry(chain, rng=0)
+    idx = rng.choice(3000, 10, replace=False)
+    w = np.full(10, 0.1)
+    fit = fit_error_model(chain[idx], np.sin(2 * chain[idx, 0]), w, geo)
+    fc = forecast(fit, chain[idx], w, geo, 0)
+    assert set(fc) == {5, 10, 20, 50}
+    assert fit.se > fc[5] > fc[10] > fc[20] > fc[50] > 0
