@@ -214,9 +214,9 @@ def repeats(quick: bool) -> dict:
                 sel = thin(x, m, method=meth, rng=1, bandwidth=bw, exact_max_rows=n, **opts)
                 row.setdefault(meth, []).append(exact((sel.points - mean) / sd, sel.weights))
                 if meth == "greedy":
-                    row.setdefault("rule", []).append(
-                        sel.report["selector"].get("greedy_rule", "corrective")
-                    )
+                    # the rule of the first selection (replacements use the corrective one)
+                    first = sel.report.get("weighted_points", {}).get("first", {})
+                    row.setdefault("rule", []).append(first.get("greedy_rule") or "corrective")
     print(f"   {'m':>3s} {'greedy':>10s} {'swap':>10s} {'genetic':>10s} {'herding ref':>12s} "
           f"{'corrective':>11s} {'greedy/herding':>15s} {'greedy/corr.':>13s}  rule kept")  # fmt: skip
     for m, row in acc.items():

@@ -495,7 +495,7 @@ def _refill(
         "rule": f"w_i > {_WEIGHT_FLOOR:g} / m",
         "first": {"n_weighted": int(w.size - n_idle0), "n_unweighted": n_idle0,
                   "mmd_features": mmd, "mmd_exact": mmd_ex, "ids": result.ids.copy(),
-                  "weights": w.tolist()},
+                  "weights": w.tolist(), "greedy_rule": result.info.get("greedy_rule")},
         "rounds": [],
         "replaced": 0,
     }  # fmt: skip
