@@ -216,6 +216,7 @@ def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None =
         weights=t.weights,
         feature_map=t.feature_map,
         n_features=t.features,
+        replace_unweighted=t.replace_unweighted,
         rng=config.study.seed,
         progress=progress,
     )
