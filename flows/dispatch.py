@@ -10,6 +10,10 @@ is a task run named after its point. The ``runner`` config value picks the task 
 - ``{"dask": {"local_cluster": {"n_workers": n}}}`` ->
   ``DaskTaskRunner(cluster_kwargs={"n_workers": n, ...})``.
 
+Whatever the task runner, at most ``concurrency`` runs are in flight: the flow submits a new
+task run only when one has finished (a Dask cluster's own slots would otherwise decide, e.g.
+every worker at once).
+
 A run that does not succeed ends its task run Failed (visible in the UI), but the flow waits
 for every task run, reads each final state and returns one outcome per spec: one failed run
 never fails the flow, and no failed state is left unresolved (shared/prefect-notes.md).
@@ -19,14 +23,14 @@ wrote before the task failed.
 
 from __future__ import annotations
 
+import queue
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from prefect import flow, task, unmapped
+from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
-from prefect.futures import as_completed
 from prefect.logging import get_run_logger
 
 from winnow.tasks._process import failed_outcome
@@ -146,7 +150,8 @@ def dispatch_flow(
     """Run the solver for every spec as Prefect task runs; return one outcome per spec.
 
     Parameters are those of :func:`winnow.tasks.dispatch.dispatch`; ``runner`` picks the
-    Prefect task runner (see :func:`make_task_runner`) and ``concurrency`` its thread count.
+    Prefect task runner (see :func:`make_task_runner`) and ``concurrency`` is the number of
+    runs in flight at once on any runner (and the local runner's thread count).
 
     Returns
     -------
@@ -166,6 +171,9 @@ def dispatch_flow(
         check_output=check_output,
         kill_grace=kill_grace,
     )
+    from winnow.tasks._runners import _validate_concurrency
+
+    concurrency = _validate_concurrency(concurrency)
     task_runner = make_task_runner(runner, concurrency=concurrency)
     done, todo = plan_dispatch(specs, known_successes=known_successes, resume=resume)
     for spec in specs:
@@ -176,10 +184,8 @@ def dispatch_flow(
     since = time.time() - 1.0
     if todo:
         with task_runner as active:
-            futures = active.map(run_point, {"spec": todo, "options": unmapped(options)})
-            spec_of = {id(f): s for f, s in zip(futures, todo, strict=True)}
-            for n_done, future in enumerate(as_completed(list(futures)), start=1):
-                spec = spec_of[id(future)]
+            finished = _bounded(active, todo, options, limit=concurrency)
+            for n_done, (spec, future) in enumerate(finished, start=1):
                 future.wait()
                 state = future.state
                 if state.is_completed():
@@ -191,3 +197,31 @@ def dispatch_flow(
                 if on_outcome is not None:
                     on_outcome(outcome)
     return [done[s.run_id] for s in specs]
+
+
+def _bounded(
+    active: Any, todo: list[RunSpec], options: RunOptions, *, limit: int
+) -> Iterator[tuple[RunSpec, Any]]:
+    """Submit the runs of ``todo`` with at most ``limit`` in flight; yield ``(spec, future)``
+    as each finishes, submitting the next one first.
+
+    The limit is kept here rather than left to the task runner: a Dask cluster would run one
+    task per worker slot, whatever the study's ``concurrency`` says.
+    """
+    finished: queue.SimpleQueue = queue.SimpleQueue()
+    waiting = list(reversed(todo))
+    in_flight: dict[int, tuple[RunSpec, Any]] = {}
+
+    def submit() -> None:
+        spec = waiting.pop()
+        future = active.submit(run_point, {"spec": spec, "options": options})
+        in_flight[id(future)] = (spec, future)
+        future.add_done_callback(lambda f, key=id(future): finished.put(key))
+
+    while waiting and len(in_flight) < limit:
+        submit()
+    while in_flight:
+        spec, future = in_flight.pop(finished.get())
+        if waiting:
+            submit()
+        yield spec, future
