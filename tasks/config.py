@@ -332,6 +332,14 @@ class ThinSettings(_Model):
         "costly run goes to a point without weight; points that still get none are left out "
         "and the saved runs reported. False keeps the first selection, zero weights included.",
     )
+    exact_max_rows: int = Field(
+        20_000,
+        ge=0,
+        description="Chain rows of the exact-kernel MMD check: all rows up to this many, else "
+        "a uniform random subsample of this many, whose MMD estimate's standard error and "
+        "~95 % interval the selection report states; 0 skips the check. Its cost grows as "
+        "the square (100,000 rows: ~20 s).",
+    )
 
     @field_validator("features")
     @classmethod

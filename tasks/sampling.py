@@ -47,7 +47,7 @@ import numpy as np
 from winnow.tasks._plots import plot_trace_pairs
 from winnow.tasks._posterior import LogPosterior, build_log_posterior, load_callable
 from winnow.tasks._priors import DISTS, Prior, PriorSet, as_prior_set
-from winnow.tasks._samplers import MOVES, Move, StepContext
+from winnow.tasks._samplers import MOVES, Move, ProgressHook, StepContext
 from winnow.tasks.diagnostics import _summarise, _validate_thresholds, burn_in_count
 from winnow.tasks.records import Chain
 
@@ -276,7 +276,9 @@ def sample(
         Keep every ``thin``-th draw after the burn-in.
     rng : int or numpy.random.Generator, optional
     progress : callable, optional
-        ``progress(done, total, what)``, called about 100 times.
+        ``progress(done, total, what)`` with the iterations done (burn-in included) of
+        ``n_draws``: at most once per 1 % of them and per 0.5 s (whichever is rarer), and
+        at the last iteration (see :class:`~winnow.tasks._samplers.ProgressHook`).
     checkpoint : callable, optional
         ``checkpoint(state)`` every ``checkpoint_every`` iterations (see the module notes).
     checkpoint_every : int
@@ -407,8 +409,7 @@ def sample(
     col_target = 2 * d
     no_ratio = [0.0] * n_chains  # the log proposal ratio of a symmetric move
     reset_at = {int(f * n_burn) for f in _RESET_FRACTIONS} - {0}
-    what = f"sampling ({sampler})"
-    report_every = max(1, n_draws // 100)
+    report = None if progress is None else ProgressHook(progress, n_draws, f"sampling ({sampler})")
     block_end = start
     t_start = time.perf_counter()
     # A LogPosterior runs the model with floating-point warnings off (non-finite output
@@ -489,8 +490,8 @@ def sample(
                 )
                 state.update({f"move:{k}": v.copy() for k, v in move.state.items()})
                 checkpoint(state)
-            if progress is not None and (done % report_every == 0 or done == n_draws):
-                progress(done, n_draws, what)
+            if report is not None:
+                report(done)
     seconds = time.perf_counter() - t_start
 
     acceptance = accepted / max(n_draws - n_burn, 1)

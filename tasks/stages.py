@@ -114,8 +114,11 @@ def sample_stage(
 ) -> Chain:
     """Calibrate the cheap model (or import a chain) and diagnose convergence.
 
-    Returns the chain with its diagnostics. Raises :class:`ConvergenceError` when a threshold
-    fails and the config says ``on_failure: stop``.
+    ``progress(done, total, what)`` hears of the sampler's iterations (at most once per 1 %
+    and per 0.5 s), or of the start and end of an import (0 then 1 of 1), like
+    :func:`thin_stage`'s. Returns the chain with its diagnostics. Raises
+    :class:`ConvergenceError` when a threshold fails and the config says
+    ``on_failure: stop``.
     """
     from . import diagnostics as diag
     from . import sampling
@@ -124,6 +127,9 @@ def sample_stage(
     s = config.sample
     if s.import_chain is not None:
         imp = s.import_chain
+        what = "importing the chain (reading, diagnostics)"
+        if progress is not None:
+            progress(0, 1, what)
         chain = read_chain_file(
             resolve(base_dir / "x", imp.file),
             dataset=imp.dataset,
@@ -138,6 +144,8 @@ def sample_stage(
             burn_in=s.burn_in,
             thresholds=_thresholds(config),
         )
+        if progress is not None:
+            progress(1, 1, what)
     else:
         assert s.model is not None  # guaranteed by SampleSettings validation
         priors = [
@@ -203,7 +211,8 @@ def sample_stage(
 # thin
 # --------------------------------------------------------------------------------------------
 def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None = None) -> Selection:
-    """Choose ``config.budget`` weighted points of the chain by MMD."""
+    """Choose ``config.budget`` weighted points of the chain by MMD; ``progress(done,
+    total, step)`` hears of every long step (see :func:`~winnow.tasks.thinning.thin`)."""
     from .thinning import thin
 
     t = config.thin
@@ -217,6 +226,7 @@ def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None =
         feature_map=t.feature_map,
         n_features=t.features,
         replace_unweighted=t.replace_unweighted,
+        exact_max_rows=t.exact_max_rows,
         rng=config.study.seed,
         progress=progress,
     )

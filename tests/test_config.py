@@ -203,7 +203,7 @@ def _refused_by_run(tmp_path: Path, data: dict) -> str:
             ("thin",),
             "colour",
             "thin.colour: Extra inputs are not permitted (got 1); expected one of: bandwidth, "
-            "feature_map, features, kernel, method, replace_unweighted, weights",
+            "exact_max_rows, feature_map, features, kernel, method, replace_unweighted, weights",
         ),
     ],
     ids=["top", "parameter", "noise", "dask runner", "alias", "no close key"],

@@ -174,7 +174,9 @@ def test_progress_and_thin():
         thresholds={"ess_bulk_min": 1, "ess_tail_min": 1, "rhat_max": 2.0},
     )
     assert calls[-1] == (400, 400, "sampling (adaptive_metropolis)")
-    assert len(calls) == 100 and [c[0] for c in calls] == sorted(c[0] for c in calls)
+    # at most once per 1 % (and per 0.5 s): a quick run reports a few times, always at the end
+    dones = [c[0] for c in calls]
+    assert 2 <= len(calls) <= 100 and dones == sorted(set(dones)) and dones[0] == 4
     assert chain.diagnostics.n_draws == 50  # (400 - 200) / 4
     assert "every 4th draw" in chain.diagnostics.burn_in_rule
     np.testing.assert_array_equal(chain.draw_index[:50], np.arange(50))
