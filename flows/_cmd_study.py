@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import json
+import shlex
 import sys
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from ._cli_common import UsageError, fail, guarded
+from ._cli_common import UsageError, fail, guarded, interruptible
 
 __all__ = ["register"]
 
@@ -97,22 +98,32 @@ def register(app: typer.Typer) -> None:
             bool, typer.Option("--force", help="Replace an existing run store.")
         ] = False,
     ) -> None:
-        """Run a study end to end (or resume it): sample, thin, dispatch, collect."""
-        cfg, text = _load(config)
-        from winnow.tasks.stages import ConvergenceError, preflight
+        """Run a study end to end (or resume it): sample, thin, dispatch, collect.
 
-        base = config.resolve().parent
-        preflight(cfg, base)  # bad input is reported here, before anything is written
-        from winnow.flows.study import study_flow
+        Ctrl-C or SIGTERM stops it: running solvers are terminated and journalled, nothing
+        half-done is committed, and the same command resumes it.
+        """
+        # --force would start the study afresh, so the resume hint never repeats it
+        with interruptible(f"winnow run {shlex.quote(str(config))}"):
+            cfg, text = _load(config)
+            from winnow.tasks.stages import ConvergenceError, preflight
 
-        try:
-            result = study_flow(
-                cfg, base_dir=str(base), config_text=text, force=force, config_path=str(config)
-            )
-        except ConvergenceError as exc:
-            print(f"winnow: {exc}", file=sys.stderr)
-            raise SystemExit(1) from None
-        _print_result(result)
+            base = config.resolve().parent
+            preflight(cfg, base)  # bad input is reported here, before anything is written
+            from winnow.flows.study import study_flow
+
+            try:
+                result = study_flow(
+                    cfg,
+                    base_dir=str(base),
+                    config_text=text,
+                    force=force,
+                    config_path=str(config),
+                )
+            except ConvergenceError as exc:
+                print(f"winnow: {exc}", file=sys.stderr)
+                raise SystemExit(1) from None
+            _print_result(result)
 
     @app.command("rerun")
     @guarded
@@ -140,7 +151,9 @@ def register(app: typer.Typer) -> None:
             )
         from winnow.flows.rerun import rerun_flow
 
-        _print_result(rerun_flow(str(store), replace=replace))
+        again = f"winnow rerun {shlex.quote(str(store))}" + (" --replace" if replace else "")
+        with interruptible(again):
+            _print_result(rerun_flow(str(store), replace=replace))
 
     @app.command("validate")
     @guarded

@@ -24,6 +24,7 @@ wrote before the task failed.
 from __future__ import annotations
 
 import queue
+import signal
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
@@ -33,7 +34,8 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.logging import get_run_logger
 
-from winnow.tasks._process import failed_outcome
+from winnow.tasks import _process
+from winnow.tasks._process import Interrupted, failed_outcome
 from winnow.tasks.dispatch import (
     DEFAULT_TAIL_BYTES,
     RunOptions,
@@ -158,6 +160,9 @@ def dispatch_flow(
     list of RunOutcome
         In the order of ``specs``, every spec accounted for.
     """
+    from winnow.flows._cli_common import reassert_interrupt_handlers
+
+    reassert_interrupt_handlers()
     logger = get_run_logger()
     specs = list(specs)
     options = RunOptions(
@@ -184,33 +189,158 @@ def dispatch_flow(
     since = time.time() - 1.0
     if todo:
         with task_runner as active:
-            finished = _bounded(active, todo, options, limit=concurrency)
-            for n_done, (spec, future) in enumerate(finished, start=1):
-                future.wait()
-                state = future.state
-                if state.is_completed():
-                    outcome = state.result()
-                else:
-                    outcome = _outcome_of_failed(spec, state, since)
-                done[spec.run_id] = outcome
-                logger.info("run %s %s (%d/%d)", spec.run_id, outcome.state, n_done, len(todo))
-                if on_outcome is not None:
-                    on_outcome(outcome)
+            in_flight: dict[int, tuple[RunSpec, Any]] = {}
+            try:
+                finished = _bounded(active, todo, options, limit=concurrency, in_flight=in_flight)
+                for n_done, (spec, future) in enumerate(finished, start=1):
+                    future.wait()
+                    state = future.state
+                    if state.is_completed():
+                        outcome = state.result()
+                    else:
+                        outcome = _outcome_of_failed(spec, state, since)
+                    _release(future)
+                    done[spec.run_id] = outcome
+                    logger.info("run %s %s (%d/%d)", spec.run_id, outcome.state, n_done, len(todo))
+                    if on_outcome is not None:
+                        on_outcome(outcome)
+            except BaseException as exc:
+                signum = _interrupt_signal(exc)
+                if signum is None:
+                    raise
+                _stop_in_flight(active, signum, list(in_flight.values()), since)
+                if isinstance(exc, Interrupted):
+                    raise
+                raise Interrupted(signum) from exc
+    if _process.stop_requested():
+        # stopped from elsewhere (another thread): the runs not started have no outcome
+        raise Interrupted(_process.stop_signal() or signal.SIGINT)
     return [done[s.run_id] for s in specs]
 
 
+def _interrupt_signal(exc: BaseException) -> int | None:
+    """The signal behind an exception that interrupts the dispatch, or None for others."""
+    from prefect.exceptions import TerminationSignal
+
+    if isinstance(exc, Interrupted):
+        return exc.signum
+    if isinstance(exc, TerminationSignal):  # Prefect's SIGTERM handler was in force
+        return int(exc.signal)
+    if isinstance(exc, KeyboardInterrupt):
+        return int(_process.stop_signal() or signal.SIGINT)
+    return None
+
+
+def _release(future: Any) -> None:
+    """Let a Dask cluster forget a finished run: a result it still held would be computed
+    again -- the solver run again -- if its worker died (e.g. of the user's Ctrl-C)."""
+    wrapped = getattr(future, "wrapped_future", None)
+    release = getattr(wrapped, "release", None)
+    if callable(release) and hasattr(wrapped, "key"):
+        try:
+            release()
+        except Exception:  # noqa: BLE001 - a closed client: nothing held any more
+            pass
+
+
+def _stop_in_flight(
+    active: Any, signum: int, in_flight: list[tuple[RunSpec, Any]], since: float
+) -> None:
+    """Stop the runs in flight: terminate their solvers and wait (a few seconds at most)
+    until each has journalled how it ended."""
+    _process.request_stop(signum)  # solvers of this process (thread-pool task runner)
+    client = getattr(active, "_client", None)
+    if client is None:
+        _process.wait_idle(_process.INTERRUPT_GRACE + 1.0)
+        return
+    # A Dask task runner: the solvers run in the workers' processes. Cancelled first, so that
+    # the scheduler does not start them again elsewhere when a worker dies of the same signal.
+    for _, future in in_flight:
+        wrapped = getattr(future, "wrapped_future", None)
+        try:
+            wrapped.cancel()
+        except Exception:  # noqa: BLE001 - a closed client
+            pass
+    _on_workers(client, _process.terminate_running, signum)
+    deadline = time.monotonic() + _process.INTERRUPT_GRACE + 1.0
+    waiting = [spec for spec, _ in in_flight]
+    while waiting and time.monotonic() < deadline:
+        waiting = [spec for spec in waiting if not _journalled_since(spec, since)]
+        time.sleep(0.05)
+    for spec, _ in in_flight:
+        _journal_interrupted(spec, signum, since)
+
+
+def _journalled_since(spec: RunSpec, since: float) -> bool:
+    from winnow.tasks.dispatch import OUTCOME_NAME
+
+    try:
+        return (Path(spec.run_dir) / OUTCOME_NAME).stat().st_mtime >= since
+    except OSError:
+        return False
+
+
+def _journal_interrupted(spec: RunSpec, signum: int, since: float) -> None:
+    """Journal a run stopped on a worker as interrupted, unless it ended well or its worker
+    already said so. A worker that lost its solver to the command's own stop (the same
+    Ctrl-C reached it, or the command terminated the solver) records an ordinary failure, or
+    nothing when it died first; the run's journal must still say why it ended."""
+    import dataclasses
+
+    from winnow.tasks.dispatch import write_outcome
+
+    o = read_outcome(spec.run_dir)
+    fresh = o is not None and o.key == spec.key and _journalled_since(spec, since)
+    if fresh and (o.state == "succeeded" or o.message.startswith(_process.INTERRUPTED)):
+        return
+    message = (
+        f"{_process.INTERRUPTED} by {_process.signal_name(signum)}: the solver's process group "
+        "was terminated; the run starts again when the study resumes"
+    )
+    if fresh:
+        outcome = dataclasses.replace(o, state="not_run", message=message, output_hashes={})
+    else:
+        outcome = failed_outcome(spec, message + " (its worker stopped before journalling it)")
+        outcome = dataclasses.replace(outcome, state="not_run")
+    try:
+        write_outcome(outcome)
+    except OSError:
+        pass  # the folder is gone: nothing to resume from there
+
+
+def _on_workers(client: Any, func: Callable[..., Any], *args: Any, timeout: float = 3.0) -> None:
+    """Call ``func(*args)`` on every Dask worker, waiting ``timeout`` seconds at most."""
+    import threading
+
+    def call() -> None:
+        try:
+            client.run(func, *args, on_error="ignore")
+        except Exception:  # noqa: BLE001 - workers already gone: nothing left to stop there
+            pass
+
+    t = threading.Thread(target=call, name="winnow-stop-workers", daemon=True)
+    t.start()
+    t.join(timeout)
+
+
 def _bounded(
-    active: Any, todo: list[RunSpec], options: RunOptions, *, limit: int
+    active: Any,
+    todo: list[RunSpec],
+    options: RunOptions,
+    *,
+    limit: int,
+    in_flight: dict[int, tuple[RunSpec, Any]],
 ) -> Iterator[tuple[RunSpec, Any]]:
     """Submit the runs of ``todo`` with at most ``limit`` in flight; yield ``(spec, future)``
-    as each finishes, submitting the next one first.
+    as each finishes, submitting the next one first. No run is submitted once a stop was
+    requested (:func:`winnow.tasks._process.request_stop`).
 
     The limit is kept here rather than left to the task runner: a Dask cluster would run one
-    task per worker slot, whatever the study's ``concurrency`` says.
+    task per worker slot, whatever the study's ``concurrency`` says. ``in_flight`` (filled
+    here) lets the caller see the runs still going when it is interrupted.
     """
     finished: queue.SimpleQueue = queue.SimpleQueue()
     waiting = list(reversed(todo))
-    in_flight: dict[int, tuple[RunSpec, Any]] = {}
 
     def submit() -> None:
         spec = waiting.pop()
@@ -218,10 +348,15 @@ def _bounded(
         in_flight[id(future)] = (spec, future)
         future.add_done_callback(lambda f, key=id(future): finished.put(key))
 
-    while waiting and len(in_flight) < limit:
+    while waiting and len(in_flight) < limit and not _process.stop_requested():
         submit()
     while in_flight:
-        spec, future = in_flight.pop(finished.get())
-        if waiting:
+        try:
+            # a timeout, so that the main thread runs its signal handlers promptly
+            key = finished.get(timeout=0.25)
+        except queue.Empty:
+            continue
+        spec, future = in_flight.pop(key)
+        if waiting and not _process.stop_requested():
             submit()
         yield spec, future

@@ -36,12 +36,15 @@ __all__ = ["rerun_flow"]
 )
 def rerun_flow(store: str, replace: bool = False) -> StudyResult:
     """Rerun or replace the unsuccessful runs of the latest revision of ``store``."""
+    from winnow.flows._cli_common import note_progress, reassert_interrupt_handlers
     from winnow.tasks.dispatch import select_for_rerun
     from winnow.tasks.store import RunStore
     from winnow.tasks.thinning import replace as replace_points
 
+    reassert_interrupt_handlers()  # SIGTERM stops the rerun as Ctrl-C does (see _cli_common)
     log = get_run_logger()
     store_path = Path(store).resolve()
+    note_progress(stage="the start of the rerun", store=store_path)
     with RunStore.open_for_write(store_path) as w:
         rev = w.latest_revision()
         done = w.stages_done(rev) if rev else set()
@@ -106,6 +109,7 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
             replaced = [s for s in specs if s.point_index not in {int(i) for i in new_sel.indices}]
             specs = selected + replaced
             selection = new_sel
+        note_progress(stage="collecting (the runs are committed)")
         w.write_runs(rev, specs, [outcomes[s.run_id] for s in specs if s.run_id in outcomes])
         in_selection = [_spec_of_point(specs, int(i)) for i in selection.indices]
         values, estimates = collect_task(

@@ -175,14 +175,17 @@ def study_flow(
     """
     import yaml
 
+    from winnow.flows._cli_common import note_progress, reassert_interrupt_handlers
     from winnow.tasks.store import RunStore
 
+    reassert_interrupt_handlers()  # SIGTERM stops the study as Ctrl-C does (see _cli_common)
     log = get_run_logger()
     base = Path(base_dir).resolve()
     here = base / "x"
     if config_text is None:
         config_text = yaml.safe_dump(config.model_dump(mode="json", by_alias=True), sort_keys=False)
     store_path = resolve(here, config.store)
+    note_progress(stage="the start of the study", store=store_path)
     inputs = study_inputs(config, base)
     if config_path is not None:
         inputs["config"] = Path(config_path).resolve()
@@ -215,6 +218,7 @@ def study_flow(
         if "chain" in done:
             chain = store.read_chain(rev)
         else:
+            note_progress(stage="sampling (it resumes from its last checkpoint)")
 
             def checkpoint(state: dict[str, Any]) -> None:
                 store.save_checkpoint(rev, "sample", state)
@@ -234,11 +238,13 @@ def study_flow(
         if "selection" in done:
             selection = store.read_selection(rev)
         else:
+            note_progress(stage="thinning")
             selection = thin_stage_task(config, chain, revision=rev)
             store.write_selection(rev, selection)
         _selection_artifact(chain, selection, config.study.name)
 
         # ---- dispatch --------------------------------------------------------------------
+        note_progress(stage="rendering the input decks")
         specs = prepare_runs_task(config, base, chain, selection, revision=rev)
         if "runs" in done and "results" in done:
             _, stored = store.read_runs(rev)
@@ -253,6 +259,7 @@ def study_flow(
         if "results" in done:
             values, estimates = store.read_results(rev)
         else:
+            note_progress(stage="collecting (the runs are committed)")
             values, estimates = collect_task(
                 config,
                 base,
@@ -265,6 +272,7 @@ def study_flow(
             )
             store.write_results(rev, values, estimates)
 
+    note_progress(stage="writing the report (every stage is committed)")
     result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
     result.report = str(_report(store_path, rev, config.study.name))
     counts = result.counts
@@ -348,8 +356,21 @@ def _dispatch(
     """Run every spec not already succeeded; returns an outcome for every spec.
 
     Runs journalled as succeeded in their folders (a killed study) and runs whose key
-    succeeded in any store revision are not run again.
+    succeeded in any store revision are not run again. An interrupt (Ctrl-C, SIGTERM) ends
+    it with :class:`~winnow.tasks._process.Interrupted` after the runs in flight were stopped
+    and journalled, so the caller commits nothing of this dispatch.
     """
+    from winnow.flows._cli_common import note_progress
+
+    note_progress(stage="dispatch", specs=specs)  # what an interrupt report counts
+    outcomes = _dispatch_all(config, base, specs, known, log)
+    note_progress(specs=None)
+    return outcomes
+
+
+def _dispatch_all(
+    config: StudyConfig, base: Path, specs, known: dict[str, str], log
+) -> dict[str, RunOutcome]:
     from winnow.flows.dispatch import dispatch_flow
     from winnow.tasks.dispatch import dispatch, make_runner
 

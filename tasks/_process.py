@@ -9,10 +9,19 @@ megabytes never fills the dispatcher's memory.
 Every finished run writes ``winnow-outcome.json`` into its run folder atomically (temporary
 file + ``os.replace``): this journal lets a killed dispatch resume without repeating a
 finished run.
+
+Stopping (Ctrl-C, SIGTERM): :func:`request_stop` sets a process-wide stop flag and sends
+SIGTERM to the process group of every solver running in this process (SIGKILL after
+:data:`INTERRUPT_GRACE` seconds). An attempt that was stopped so journals its run as
+``not_run`` with a message starting ``"interrupted"``; a run not yet started when the flag is
+set does not start, and no retry starts after it. The ``winnow`` command line calls
+:func:`request_stop` from its signal handler; the dispatch loops call it when an interrupt
+reaches them.
 """
 
 from __future__ import annotations
 
+import atexit
 import hashlib
 import math
 import numbers
@@ -39,6 +48,9 @@ from winnow.tasks.records import RUN_STATES, Attempt, RunOutcome, RunSpec
 
 __all__ = [
     "DEFAULT_TAIL_BYTES",
+    "INTERRUPTED",
+    "INTERRUPT_GRACE",
+    "Interrupted",
     "RunOptions",
     "check_outputs",
     "execute_run",
@@ -46,7 +58,14 @@ __all__ = [
     "outcome_to_dict",
     "read_outcome",
     "read_tail",
+    "request_stop",
+    "reset_stop",
     "run_one",
+    "stop_requested",
+    "stop_signal",
+    "terminate_descendant_solvers",
+    "terminate_running",
+    "wait_idle",
     "write_outcome",
 ]
 
@@ -346,25 +365,240 @@ def _reap_strays(pgid: int) -> None:
         pass
 
 
-# Solver processes running now, by the thread waiting on them (see kill_running).
+# Solver processes running now, by the thread waiting on them (see kill_running). Reentrant:
+# request_stop may run in a signal handler on a thread that holds the lock.
 _LIVE: dict[int, subprocess.Popen] = {}
-_LIVE_LOCK = threading.Lock()
+_LIVE_LOCK = threading.RLock()
 
 
 def kill_running(thread_idents: Iterable[int]) -> int:
     """Kill the process groups of solvers waited on by the given threads; return how many.
 
     Used by a runner whose dispatch is interrupted (Ctrl-C, cancelled flow), so no solver
-    keeps running behind it. The interrupted runs journal a failure and are run again later.
+    keeps running behind it. The interrupted runs journal as ``not_run`` with a message
+    starting ``"interrupted"`` and are run again later.
     """
     with _LIVE_LOCK:
         procs = [_LIVE[i] for i in thread_idents if i in _LIVE]
+        for proc in procs:
+            _STOPPED.setdefault(proc.pid, stop_signal() or 0)
     for proc in procs:
-        try:
-            os.killpg(proc.pid, signal.SIGKILL)
-        except (ProcessLookupError, PermissionError):
-            pass
+        _signal_group(proc.pid, signal.SIGKILL)
     return len(procs)
+
+
+# --------------------------------------------------------------------------------------------
+# stopping every run of this process (Ctrl-C, SIGTERM)
+# --------------------------------------------------------------------------------------------
+#: Seconds between SIGTERM and SIGKILL of the solvers' process groups on an interrupt.
+INTERRUPT_GRACE = 2.0
+#: Start of the journal message of a run stopped by an interrupt.
+INTERRUPTED = "interrupted"
+
+_STOP = threading.Event()
+_STOP_SIGNAL: list[int] = []
+_STOPPED: dict[int, int] = {}  # solver pid -> the signal that stopped it (terminate_running)
+_EXECUTING = [0]  # runs between the start of _run_with_options and their journal
+_IDLE = threading.Condition()
+
+
+class Interrupted(KeyboardInterrupt):
+    """A study stopped by a signal (SIGINT or SIGTERM); ``signum`` names it.
+
+    A ``KeyboardInterrupt``, so that no ``except Exception`` on the way turns the stop into
+    an ordinary failure whose outcomes would be committed.
+    """
+
+    def __init__(self, signum: int) -> None:
+        self.signum = int(signum)
+        super().__init__(signal_name(self.signum))
+
+
+def signal_name(signum: int) -> str:
+    """``"SIGINT"`` for 2, and so on (``"signal <n>"`` for an unknown number)."""
+    try:
+        return signal.Signals(signum).name
+    except ValueError:
+        return f"signal {signum}"
+
+
+def _signal_group(pgid: int, sig: int) -> None:
+    try:
+        os.killpg(pgid, sig)
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+def _kill_after(procs: list[subprocess.Popen], grace: float) -> None:
+    deadline = time.monotonic() + grace
+    while time.monotonic() < deadline and any(_group_alive(p.pid) for p in procs):
+        time.sleep(0.02)
+    for proc in procs:
+        _signal_group(proc.pid, signal.SIGKILL)
+
+
+def request_stop(signum: int = signal.SIGINT, *, grace: float | None = None) -> int:
+    """Start no more solver runs in this process and terminate the running ones.
+
+    Sets the stop flag (the first call records ``signum``) and calls
+    :func:`terminate_running`. Safe to call from a signal handler in the main thread and from
+    any thread, more than once.
+
+    Returns
+    -------
+    int
+        The number of solver process groups signalled.
+    """
+    if not _STOP.is_set():
+        _STOP_SIGNAL[:] = [int(signum)]
+        _STOP.set()
+    return terminate_running(signum, grace=grace)
+
+
+def terminate_running(signum: int = signal.SIGINT, *, grace: float | None = None) -> int:
+    """Terminate the solvers running in this process now; their runs journal as interrupted.
+
+    Sends SIGTERM to the process group of every solver running now and SIGKILL to what is
+    left of them after ``grace`` seconds (default :data:`INTERRUPT_GRACE`; from a background
+    thread, so this returns at once). Unlike :func:`request_stop` it leaves the stop flag
+    alone: a Dask worker told to stop the runs of one interrupted study goes on serving others.
+
+    Returns
+    -------
+    int
+        The number of solver process groups signalled.
+    """
+    with _LIVE_LOCK:
+        procs = list(_LIVE.values())
+        for proc in procs:
+            _STOPPED.setdefault(proc.pid, int(signum))
+    for proc in procs:
+        _signal_group(proc.pid, signal.SIGTERM)
+    if procs:
+        wait = INTERRUPT_GRACE if grace is None else grace
+        threading.Thread(
+            target=_kill_after, args=(procs, wait), name="winnow-stop", daemon=True
+        ).start()
+    return len(procs)
+
+
+def kill_all_now() -> int:
+    """SIGKILL the process group of every solver running in this process; return how many."""
+    with _LIVE_LOCK:
+        procs = list(_LIVE.values())
+    for proc in procs:
+        _signal_group(proc.pid, signal.SIGKILL)
+    return len(procs)
+
+
+def _descendant_solvers() -> list[int]:
+    """Pids of this process's descendants that lead their own session, not looking inside
+    them: the solvers started here or by processes started here (the workers of a local Dask
+    cluster), each with its process group. Linux ``/proc`` only; ``[]`` elsewhere."""
+    try:
+        entries = [e for e in os.listdir("/proc") if e.isdigit()]
+    except OSError:
+        return []
+    children: dict[int, list[int]] = {}
+    session: dict[int, int] = {}
+    for e in entries:
+        try:
+            with open(f"/proc/{e}/stat", encoding="ascii", errors="replace") as fh:
+                stat = fh.read()
+        except OSError:
+            continue
+        fields = stat[stat.rindex(")") + 2 :].split()  # after "pid (comm) "
+        pid, ppid, sid = int(e), int(fields[1]), int(fields[3])
+        children.setdefault(ppid, []).append(pid)
+        session[pid] = sid
+    found, stack = [], [os.getpid()]
+    while stack:
+        for child in children.get(stack.pop(), []):
+            if session.get(child) == child:
+                found.append(child)  # a solver: its group is signalled as a whole
+            else:
+                stack.append(child)
+    return found
+
+
+def terminate_descendant_solvers(*, grace: float | None = None) -> int:
+    """SIGTERM the process group of every solver below this process (see
+    :func:`_descendant_solvers`), SIGKILL after ``grace`` seconds; return how many.
+
+    The command line's backstop on an interrupt: a local Dask worker that dies of the same
+    Ctrl-C cannot stop the solvers it started any more. Only for a process that knows every
+    session leader below it is a solver (the ``winnow`` command).
+    """
+    pgids = _descendant_solvers()
+    for pgid in pgids:
+        _signal_group(pgid, signal.SIGTERM)
+    if pgids:
+        wait = INTERRUPT_GRACE if grace is None else grace
+
+        def later() -> None:
+            deadline = time.monotonic() + wait
+            while time.monotonic() < deadline and any(_group_alive(g) for g in pgids):
+                time.sleep(0.02)
+            for g in pgids:
+                _signal_group(g, signal.SIGKILL)
+
+        threading.Thread(target=later, name="winnow-stop-descendants", daemon=True).start()
+    return len(pgids)
+
+
+def kill_descendant_solvers() -> int:
+    """SIGKILL the process group of every solver below this process; return how many."""
+    pgids = _descendant_solvers()
+    for pgid in pgids:
+        _signal_group(pgid, signal.SIGKILL)
+    return len(pgids)
+
+
+def _kill_live_at_exit() -> None:
+    """A process that exits (a Dask worker stopped by Ctrl-C, an interpreter shutting down)
+    takes the solvers it started with it: they run in their own sessions, so nothing else
+    would stop them."""
+    kill_all_now()
+
+
+atexit.register(_kill_live_at_exit)
+
+
+def stop_requested() -> bool:
+    """Whether :func:`request_stop` was called (and not reset since)."""
+    return _STOP.is_set()
+
+
+def stop_signal() -> int | None:
+    """The signal of the first :func:`request_stop` call, or None."""
+    return _STOP_SIGNAL[0] if _STOP.is_set() and _STOP_SIGNAL else None
+
+
+def reset_stop() -> None:
+    """Clear the stop flag (after the interrupted command has been reported)."""
+    _STOP.clear()
+    _STOP_SIGNAL.clear()
+
+
+def wait_idle(timeout: float) -> bool:
+    """Wait until no run of this process is between its start and its journal; True if so."""
+    deadline = time.monotonic() + timeout
+    with _IDLE:
+        while _EXECUTING[0]:
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                return False
+            _IDLE.wait(remaining)
+    return True
+
+
+def _interrupted_message(sig: int | None = None) -> str:
+    sig = stop_signal() if sig is None else sig
+    by = f" by {signal_name(sig)}" if sig else ""  # 0: stopped by the dispatcher, no signal
+    return (
+        f"{INTERRUPTED}{by}: the solver's process group was terminated; the run starts again "
+        "when the study resumes"
+    )
 
 
 def _rotate_logs(run_dir: Path, number: int) -> None:
@@ -413,6 +647,11 @@ def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attem
         env = dict(os.environ)
         env.update(options.env)
     out_path, err_path = run_dir / STDOUT_NAME, run_dir / STDERR_NAME
+    if _STOP.is_set():  # internal state "not_started": the caller records no attempt
+        msg = f"{INTERRUPTED}: not started"
+        return Attempt(number, spec.argv, started, started, None, False, "", "", msg), (
+            "not_started"
+        )
     try:
         if number > 1:
             _rotate_logs(run_dir, number)
@@ -434,6 +673,10 @@ def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attem
     ident = threading.get_ident()
     with _LIVE_LOCK:
         _LIVE[ident] = proc
+    if _STOP.is_set():
+        # a stop requested between the start and the line above did not see this solver
+        _signal_group(proc.pid, signal.SIGTERM)
+        threading.Thread(target=_kill_after, args=([proc], INTERRUPT_GRACE), daemon=True).start()
     try:
         status: int | None = proc.wait(timeout=options.timeout)
     except subprocess.TimeoutExpired:
@@ -447,19 +690,31 @@ def _one_attempt(spec: RunSpec, number: int, options: RunOptions) -> tuple[Attem
     finally:
         with _LIVE_LOCK:
             _LIVE.pop(ident, None)
+            stopped_by = _STOPPED.pop(proc.pid, None)
     _reap_strays(proc.pid)
     ended = time.time()
+    # A solver that still ended well keeps its success; any other end after a stop request
+    # is the stop's doing (the group was sent SIGTERM), not the solver's failure.
+    interrupted = (_STOP.is_set() or stopped_by is not None) and status != 0
+    if interrupted:
+        error = _interrupted_message(stopped_by)
+    elif timed_out:
+        error = f"killed after {options.timeout:g} s timeout"
+    else:
+        error = ""
     attempt = Attempt(
         number=number,
         argv=spec.argv,
         started=started,
         ended=ended,
         exit_status=status,
-        timed_out=timed_out,
+        timed_out=timed_out and not interrupted,
         stdout_tail=read_tail(out_path, options.tail_bytes),
         stderr_tail=read_tail(err_path, options.tail_bytes),
-        error="" if not timed_out else f"killed after {options.timeout:g} s timeout",
+        error=error,
     )
+    if interrupted:
+        return attempt, "not_run"
     if timed_out:
         return attempt, "timed_out"
     if status != 0:
@@ -536,6 +791,17 @@ def _run_with_options(spec: RunSpec, options: RunOptions, *, journal: bool = Tru
         raise TypeError(f"spec must be a RunSpec, got {type(spec).__name__}")
     if not spec.argv:
         raise ValueError(f"RunSpec {spec.run_id!r} has an empty argv")
+    with _IDLE:
+        _EXECUTING[0] += 1
+    try:
+        return _attempts(spec, options, journal=journal)
+    finally:
+        with _IDLE:
+            _EXECUTING[0] -= 1
+            _IDLE.notify_all()
+
+
+def _attempts(spec: RunSpec, options: RunOptions, *, journal: bool) -> RunOutcome:
     run_dir = Path(spec.run_dir)
     attempts: list[Attempt] = []
     hashes: dict[str, str] = {}
@@ -543,10 +809,25 @@ def _run_with_options(spec: RunSpec, options: RunOptions, *, journal: bool = Tru
     manifest_before = _manifest_digest(run_dir)
     for number in range(1, options.retries + 2):
         if number > 1 and options.retry_delay > 0:
-            time.sleep(options.retry_delay)
+            _STOP.wait(options.retry_delay)
+        if _STOP.is_set():
+            # no new attempt after a stop request; a run that never started is not journalled
+            # (it did not end), so an earlier journal of its folder stays as it was
+            if not attempts:
+                return failed_outcome(spec, f"{INTERRUPTED}: not started", state="not_run")
+            state, message = "not_run", _interrupted_message()
+            break
         attempt, state = _one_attempt(spec, number, options)
+        if state == "not_started":  # the stop came just before the process would start
+            if not attempts:
+                return failed_outcome(spec, attempt.error, state="not_run")
+            state, message = "not_run", _interrupted_message()
+            break
         attempts.append(attempt)
         hashes = {}
+        if state == "not_run":
+            message = attempt.error
+            break
         if state == "succeeded":
             hashes, problem = check_success(run_dir, options, manifest_before)
             if problem:

@@ -20,6 +20,7 @@ import numbers
 import os
 import re
 import shlex
+import signal
 import subprocess
 import threading
 import time
@@ -39,6 +40,10 @@ from winnow.tasks._process import (
     failed_outcome,
     kill_running,
     read_tail,
+    request_stop,
+    stop_requested,
+    stop_signal,
+    terminate_running,
 )
 from winnow.tasks.records import Attempt, RunOutcome, RunSpec
 
@@ -76,6 +81,11 @@ class Runner(abc.ABC):
         ``on_outcome(outcome)`` is called in this thread as each run finishes. If it raises,
         the remaining runs still finish (and are journalled); the first error is raised at the
         end.
+
+        An interrupt (``KeyboardInterrupt``, e.g. Ctrl-C) requests a stop
+        (:func:`~winnow.tasks._process.request_stop`: no run starts, running solvers are
+        terminated and journalled as interrupted), lets the runner clean up (its solvers or
+        jobs stopped) and propagates; nothing is returned for the unfinished runs.
         """
         specs = list(specs)
         by_id = {s.run_id: s for s in specs}
@@ -83,8 +93,9 @@ class Runner(abc.ABC):
         callback_error: BaseException | None = None
         runner_error = ""
         if specs:
+            it = self._iter_outcomes(specs, options)
             try:
-                for spec, result in self._iter_outcomes(specs, options):
+                for spec, result in it:
                     if spec.run_id not in by_id or spec.run_id in outcomes:
                         continue
                     if isinstance(result, RunOutcome):
@@ -103,6 +114,10 @@ class Runner(abc.ABC):
                             callback_error = exc
             except Exception as exc:  # noqa: BLE001 - the runner itself broke down
                 runner_error = f"{self.name} runner stopped: {type(exc).__name__}: {exc}"
+            except KeyboardInterrupt as exc:
+                request_stop(getattr(exc, "signum", None) or stop_signal() or signal.SIGINT)
+                it.close()  # now, not when the traceback is freed: the runner's cleanup
+                raise
         for spec in specs:
             if spec.run_id not in outcomes:
                 msg = runner_error or f"the {self.name} runner never reported this run"
@@ -241,6 +256,7 @@ class DaskRunner(Runner):
         from distributed import as_completed as dask_as_completed
 
         client, cluster, owned = self._open()
+        finished = False
         try:
             pending = list(specs)
             limit = self.concurrency or len(pending)
@@ -262,13 +278,20 @@ class DaskRunner(Runner):
                 except Exception as exc:  # noqa: BLE001 - worker died, lost data, ...
                     result = exc
                 fut.release()
-                if queue:
+                if queue and not stop_requested():
                     nxt = queue.pop(0)
                     new = submit(nxt)
                     spec_of[new.key] = nxt
                     done.add(new)
                 yield spec, result
+            finished = True
         finally:
+            if not finished and stop_requested():
+                # the solvers run in the workers' processes: stop them there (best effort)
+                try:
+                    client.run(terminate_running, stop_signal() or signal.SIGINT, on_error="ignore")
+                except Exception:  # noqa: BLE001 - workers gone: nothing left to stop
+                    pass
             if owned:
                 client.close()
                 if cluster is not None:
@@ -477,11 +500,11 @@ class BatchRunner(Runner):
                 return record(
                     None, False, f"run folder {run_dir} vanished while job {job_id} ran"
                 ), "failed"
-            if stop.is_set():
+            if stop.is_set() or stop_requested():
                 self._cancel_job(job_id)
                 return record(
-                    None, False, f"dispatch interrupted; job {job_id} cancelled"
-                ), "failed"
+                    None, False, f"interrupted: dispatch stopped; job {job_id} cancelled"
+                ), "not_run"
             if deadline is not None and time.monotonic() > deadline:
                 self._cancel_job(job_id)
                 msg = (
@@ -505,15 +528,19 @@ class BatchRunner(Runner):
         state, message, hashes = "failed", "", {}
         manifest_before = _manifest_digest(run_dir)
         for number in range(1, options.retries + 2):
-            if stop.is_set():
-                state = state if attempts else "not_run"
-                message = message or "dispatch interrupted before this run was submitted"
+            if stop.is_set() or stop_requested():
+                if not attempts:  # never submitted: not journalled (it did not end)
+                    return failed_outcome(spec, "interrupted: not submitted", state="not_run")
+                state, message = "not_run", "interrupted: dispatch stopped before a retry"
                 break
             if number > 1 and options.retry_delay > 0:
                 stop.wait(options.retry_delay)
             attempt, state = self._attempt(spec, number, options, stop)
             attempts.append(attempt)
             hashes = {}
+            if state == "not_run":
+                message = attempt.error
+                break
             if state == "succeeded":
                 hashes, problem = check_success(run_dir, options, manifest_before)
                 state, message = ("output_missing", problem) if problem else ("succeeded", "")

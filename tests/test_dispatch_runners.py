@@ -243,7 +243,7 @@ def test_interrupted_batch_dispatch_returns_at_once(tmp_path, fake_sbatch):
     assert spec == quick and outcome.state == "succeeded"
     gen.close()  # what Ctrl-C in the dispatcher does to the generator
     journal = read_outcome(sleeper.run_dir)
-    assert journal.state == "failed" and "interrupted" in journal.message
+    assert journal.state == "not_run" and journal.message.startswith("interrupted"), journal
     marker = sleeper.run_dir / "winnow-exit-status"
     import time
 
