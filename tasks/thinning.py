@@ -835,7 +835,7 @@ def _run_one_thread(
             if exact.sample_of is None
             else "unbiased MMD^2 on a uniform subsample without replacement; standard error "
             "from the U-statistic variance (Gretton et al. 2012, Corollary 16; Hoeffding "
-            "1948): first-order term plus a bound on the second-order one, finite-population "
+            "1948): first-order plus degenerate second-order term, finite-population "
             "corrected; mmd_low/mmd_high: sqrt(mmd_sq -/+ 1.96 mmd_sq_se), about 95 %",
         }
         t = lap("exact_mmd_error", t)
