@@ -82,6 +82,16 @@ def _write(out: Path, sel, names: tuple[str, ...], seed: int) -> None:
     tmp.replace(out)
 
 
+def _thin_default(name: str):
+    """A thin setting's default, read from the settings model (declared once there)."""
+    from winnow.tasks.config import ThinSettings
+
+    return ThinSettings.model_fields[name].default
+
+
+_EXACT_ROWS_DEFAULT = _thin_default("exact_max_rows")
+
+
 def register(app: typer.Typer) -> None:
     """Add ``winnow thin`` to ``app``."""
 
@@ -111,7 +121,7 @@ def register(app: typer.Typer) -> None:
         ] = None,
         exact_rows: Annotated[
             int, typer.Option(help="Rows used for the exact-kernel MMD check (0 skips it).")
-        ] = 100_000,
+        ] = _EXACT_ROWS_DEFAULT,
         force: Annotated[bool, typer.Option(help="Overwrite an existing --out.")] = False,
         quiet: Annotated[bool, typer.Option(help="No progress bar.")] = False,
     ) -> None:
