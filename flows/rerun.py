@@ -32,15 +32,24 @@ __all__ = ["rerun_flow"]
     name="winnow-rerun",
     flow_run_name="rerun-{store}",
     description="Run again only the failed, timed-out and unfinished runs of a study's latest "
-    "revision, or replace the points that failed for good.",
+    "revision, replace the points that failed for good, or add points.",
 )
-def rerun_flow(store: str, replace: bool = False) -> StudyResult:
-    """Rerun or replace the unsuccessful runs of the latest revision of ``store``."""
+def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResult:
+    """Rerun or replace the unsuccessful runs of the latest revision of ``store``.
+
+    With ``extend=k`` (k > 0), first add ``k`` points to the selection, chosen by the thin
+    stage to shrink the MMD most with every earlier point kept
+    (:func:`winnow.tasks.thinning.extend`), and run them; weights are re-solved over all
+    points. The report's "more runs" forecast says what ``k`` buys.
+    """
     from winnow.flows._cli_common import note_progress, reassert_interrupt_handlers
     from winnow.tasks.dispatch import select_for_rerun
     from winnow.tasks.store import RunStore
+    from winnow.tasks.thinning import extend as extend_points
     from winnow.tasks.thinning import replace as replace_points
 
+    if isinstance(extend, bool) or not isinstance(extend, int) or extend < 0:
+        raise ValueError(f"extend: expected a whole number >= 0 of points to add, got {extend!r}")
     reassert_interrupt_handlers()  # SIGTERM stops the rerun as Ctrl-C does (see _cli_common)
     log = get_run_logger()
     store_path = Path(store).resolve()
@@ -68,11 +77,36 @@ def rerun_flow(store: str, replace: bool = False) -> StudyResult:
         pending |= {s.run_id for s in specs if s.run_id not in outcomes}
         current = {int(i) for i in selection.indices}
         pending = {rid for rid in pending if _spec(specs, rid).point_index in current}
+        if extend:
+            new_sel = extend_points(chain.samples, selection, extend)
+            known = {s.point_index for s in specs}
+            fresh = [k for k, i in enumerate(new_sel.indices) if int(i) not in known]
+            new_specs = prepare_runs_task(
+                config, base, chain, new_sel, revision=rev, positions=fresh
+            )
+            log.info("adding %d point(s) to the %d chosen", len(new_specs), selection.m)
+            w.write_selection(rev, new_sel)
+            by_point = {s.point_index: s for s in (*specs, *new_specs)}
+            in_sel = {int(i) for i in new_sel.indices}
+            specs = [
+                dataclasses.replace(by_point[int(i)], weight=float(wt))
+                for i, wt in zip(new_sel.indices, new_sel.weights, strict=True)
+            ] + [s for s in specs if s.point_index not in in_sel]
+            selection = new_sel
+            pending |= {s.run_id for s in new_specs}
+            todo_new = new_specs
+        else:
+            todo_new = []
         if not pending:
             log.info("%s %s: every run already succeeded; nothing to rerun", store_path, rev)
         elif not replace:
-            todo = _rerender(
-                config, base, chain, selection, [s for s in specs if s.run_id in pending]
+            new_ids = {s.run_id for s in todo_new}
+            todo = todo_new + _rerender(
+                config,
+                base,
+                chain,
+                selection,
+                [s for s in specs if s.run_id in pending and s.run_id not in new_ids],
             )
             log.info("rerunning %d run(s) with their recorded decks", len(todo))
             outcomes.update(_dispatch(config, base, todo, w.successful_runs_by_key(), log))

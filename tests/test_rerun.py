@@ -100,3 +100,36 @@ def test_rerun_replace_swaps_failed_points_for_substitutes(prefect_harness, tmp_
     again = reweight(chain.samples, sel, np.arange(9))
     np.testing.assert_allclose(sel.weights, again.weights, atol=1e-12)
     assert check(folder / "study.h5").ok
+
+
+def test_rerun_extend_adds_points_and_runs_only_them(prefect_harness, tmp_path):
+    # `winnow rerun --extend k` (issue 14): k points added by the thin stage's extend with the
+    # earlier points kept first; only the new points (and any failed run) run; the weights
+    # are re-solved over all points (checked against the thin stage's reweight).
+    from winnow.flows.rerun import rerun_flow
+    from winnow.tasks.thinning import reweight
+
+    folder = tmp_path / "study"
+    _first_run(folder, budget=6)
+    (folder / "runs" / "FLAKY").unlink()
+    with RunStore.open_read(folder / "study.h5") as store:
+        sel0 = store.read_selection()
+        _, outcomes0 = store.read_runs()
+    failed = sum(o.state != "succeeded" for o in outcomes0)
+    calls_before = _calls(folder)
+    result = rerun_flow(str(folder / "study.h5"), extend=3)
+    with RunStore.open_read(folder / "study.h5") as store:
+        sel = store.read_selection()
+        chain = store.read_chain()
+        _, outcomes = store.read_runs()
+        _, (est,) = store.read_results()
+    assert sel.indices[: sel0.m].tolist() == sel0.indices.tolist()
+    assert sel.m >= sel0.m + 1 and len(set(sel.indices.tolist())) == sel.m
+    new_calls = _calls(folder) - calls_before
+    assert sum(new_calls.values()) == (sel.m - sel0.m) + failed
+    assert result.counts == {"succeeded": sel.m} and est.n_used == sel.m
+    again = reweight(chain.samples, sel, np.arange(sel.m))
+    np.testing.assert_allclose(sel.weights, again.weights, atol=1e-12)
+    assert check(folder / "study.h5").ok
+    with pytest.raises(ValueError, match="extend: expected a whole number"):
+        rerun_flow.fn(str(folder / "study.h5"), extend=-1)
