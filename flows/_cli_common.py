@@ -2,8 +2,10 @@
 
 Every command reports bad input the same way: one message on stderr naming the file, field or
 argument and what was expected, and exit status 2 (nothing written). Commands raise
-:class:`UsageError` (or let ``ValueError``/``TypeError``/``FileNotFoundError`` from the
-validated core escape) and :func:`guarded` turns them into that exit.
+:class:`UsageError`, the validated core raises :class:`winnow.tasks.errors.InputError` (or
+another dedicated type, see :func:`is_usage_error`), and :func:`guarded` turns them into that
+exit. Any other exception is a bug: it is reported as an internal error, exit status 1, with
+its traceback saved to a file whose path is printed.
 
 Commands that run a study stop on Ctrl-C or SIGTERM through :func:`interruptible`: the first
 signal starts no new solver run, terminates the running solvers' process groups (their runs
@@ -15,6 +17,7 @@ signal exits at once.
 from __future__ import annotations
 
 import contextlib
+import fnmatch
 import functools
 import os
 import signal
@@ -25,17 +28,22 @@ from collections.abc import Callable, Iterator, Sequence
 from typing import Any, NoReturn, ParamSpec, TypeVar
 
 __all__ = [
+    "EXIT_INTERNAL",
     "EXIT_USAGE",
     "HARD_EXIT_AFTER",
+    "PLAIN_VALIDATORS",
     "UsageError",
     "fail",
     "guarded",
+    "internal_error",
     "interruptible",
+    "is_usage_error",
     "note_progress",
     "reassert_interrupt_handlers",
 ]
 
 EXIT_USAGE = 2
+EXIT_INTERNAL = 1
 
 P = ParamSpec("P")
 R = TypeVar("R")
@@ -51,22 +59,117 @@ def fail(message: str) -> NoReturn:
     raise SystemExit(EXIT_USAGE)
 
 
+#: Functions that validate user input (a command-line argument, a config value checked against
+#: data) but raise a plain ``ValueError``/``TypeError`` rather than
+#: :class:`~winnow.tasks.errors.InputError`: ``(module, function)``. Such an error raised
+#: in one of them is bad input. Each entry should become ``raise InputError(`` in its module,
+#: and then leave this list; ``_validate_*`` helpers (DEVELOPERS.md, "Validation at the
+#: boundary") count as validators without an entry. A module name may end in ``*`` (the run
+#: store's modules).
+PLAIN_VALIDATORS: frozenset[tuple[str, str]] = frozenset(
+    {
+        ("winnow.tasks.stages", "preflight"),  # the study config against its files and data
+        ("winnow.tasks.stages", "_check_creatable"),  # store / work_dir paths
+        ("winnow.tasks.stages", "read_observations"),  # the observations CSV
+        ("winnow.tasks.thinning", "_prepare"),  # a chain without one finite row
+        ("winnow.tasks.thinning", "_run_one_thread"),  # --budget against the distinct rows
+        ("winnow.tasks._kernels", "get_kernel"),  # --kernel
+        ("winnow.tasks.diagnostics", "burn_in_count"),  # --burn-in
+        ("winnow.tasks.diagnostics", "chain_to_array"),  # --chains
+        ("winnow.tasks._store*", "resolve_revision"),  # -r REV
+        ("winnow.tasks.store", "trace"),  # winnow trace POINT
+        ("winnow.tasks.store", "_find_run"),  # winnow trace POINT
+        ("winnow.tasks.store", "_lineage"),  # winnow trace ROW
+    }
+)
+
+
+def _raised_by_validator(exc: BaseException) -> bool:
+    """Whether ``exc`` was raised (its last traceback frame) by one of winnow's validators."""
+    tb = exc.__traceback__
+    if tb is None:
+        return False
+    while tb.tb_next is not None:
+        tb = tb.tb_next
+    module = str(tb.tb_frame.f_globals.get("__name__", ""))
+    name = tb.tb_frame.f_code.co_name
+    if not module.startswith("winnow."):
+        return False
+    if name.startswith("_validate"):
+        return True
+    return any(name == func and fnmatch.fnmatchcase(module, mod) for mod, func in PLAIN_VALIDATORS)
+
+
+def is_usage_error(exc: BaseException) -> bool:
+    """Whether ``exc`` reports bad user input (exit 2) rather than a bug (exit 1).
+
+    Bad input is what the code that validates input raises on purpose: :class:`UsageError`,
+    :class:`~winnow.tasks.errors.InputError` (config and chain files among others), pydantic's
+    ``ValidationError``, the dedicated errors of decks, run stores and the writer lock, a file
+    the user named that is missing or is a folder, an existing file a command refuses to
+    overwrite, and a ``ValueError``/``TypeError`` raised inside one of winnow's validators
+    (see :data:`PLAIN_VALIDATORS`). Any other ``ValueError`` or ``TypeError`` is a bug.
+    """
+    from winnow.tasks.errors import InputError
+
+    if isinstance(exc, UsageError | InputError | FileNotFoundError | IsADirectoryError):
+        return True
+    if isinstance(exc, FileExistsError | NotADirectoryError):
+        return True
+    # by name, so that a command that never loaded these modules does not import them here
+    ours = {"DeckError", "StoreBusyError", "StoreFormatError", "SchemaVersionError"}
+    for k in type(exc).__mro__:
+        if k.__module__.startswith("pydantic") and k.__name__ == "ValidationError":
+            return True
+        if k.__module__.startswith("winnow.") and k.__name__ in ours:
+            return True
+    return isinstance(exc, ValueError | TypeError) and _raised_by_validator(exc)
+
+
+def internal_error(exc: BaseException) -> NoReturn:
+    """Report a bug: the exception's one-line summary, its traceback saved to a file, exit 1."""
+    import tempfile
+    import traceback
+
+    summary = traceback.format_exception_only(type(exc), exc)[-1].strip()
+    text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+    where = ""
+    try:
+        fd, name = tempfile.mkstemp(prefix="winnow-internal-error-", suffix=".txt")
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(f"winnow {' '.join(sys.argv[1:])}\n\n{text}")
+        where = f"; the traceback is in {name}"
+    except OSError as err:  # no temp dir: show the traceback instead of losing it
+        print(text, file=sys.stderr, end="")
+        where = f" (could not save the traceback: {err})"
+    print(
+        f"winnow: internal error: {summary}{where}\n"
+        "This is a bug in winnow, not a problem with your input; please report it with the "
+        "traceback.",
+        file=sys.stderr,
+    )
+    raise SystemExit(EXIT_INTERNAL)
+
+
 def guarded(func: Callable[P, R]) -> Callable[P, R]:
-    """Decorate a command so that bad-input exceptions end in :func:`fail`."""
+    """Decorate a command: bad input ends in :func:`fail` (exit 2), a bug in
+    :func:`internal_error` (exit 1)."""
 
     @functools.wraps(func)
     def wrapper(*args: P.args, **kwargs: P.kwargs) -> R:
         try:
             return func(*args, **kwargs)
-        except (UsageError, ValueError, TypeError, FileNotFoundError, IsADirectoryError) as exc:
-            fail(str(exc))
-        except (RuntimeError, FileExistsError) as exc:
-            # a store held by another writer, or one that would be overwritten: refused
-            from winnow.tasks.store import StoreBusyError
+        except Exception as exc:
+            import click
+            import typer
 
-            if isinstance(exc, StoreBusyError | FileExistsError):
+            if isinstance(exc, typer.Exit | typer.Abort | click.exceptions.Exit | click.Abort):
+                raise  # the command line's own way out (typer.Exit(1) of `winnow check`)
+            if isinstance(exc, click.ClickException):
+                raise
+            if is_usage_error(exc):
                 fail(str(exc))
-            raise
+            internal_error(exc)
 
     return wrapper
 

@@ -110,7 +110,7 @@ def register(app: typer.Typer) -> None:
 
             base = config.resolve().parent
             preflight(cfg, base)  # bad input is reported here, before anything is written
-            from winnow.flows.study import study_flow
+            from winnow.flows.study import StudyFailed, study_flow
 
             try:
                 result = study_flow(
@@ -120,7 +120,7 @@ def register(app: typer.Typer) -> None:
                     force=force,
                     config_path=str(config),
                 )
-            except ConvergenceError as exc:
+            except (ConvergenceError, StudyFailed) as exc:  # expected ends, not bugs
                 print(f"winnow: {exc}", file=sys.stderr)
                 raise SystemExit(1) from None
             _print_result(result)

@@ -37,7 +37,18 @@ from winnow.tasks.prefect_tasks import (
 )
 from winnow.tasks.records import RunOutcome
 
-__all__ = ["StudyResult", "recorded_values", "study_flow", "study_inputs", "summarise"]
+__all__ = [
+    "StudyFailed",
+    "StudyResult",
+    "recorded_values",
+    "study_flow",
+    "study_inputs",
+    "summarise",
+]
+
+
+class StudyFailed(RuntimeError):
+    """A study that ran to the end without one successful run (everything is recorded)."""
 
 
 @dataclass
@@ -277,7 +288,7 @@ def study_flow(
     result.report = str(_report(store_path, rev, config.study.name))
     counts = result.counts
     if counts.get("succeeded", 0) == 0:
-        raise RuntimeError(
+        raise StudyFailed(
             f"study {config.study.name} {rev}: no run succeeded ({counts}); every outcome is "
             f"recorded in {store_path} -- see `winnow status {store_path}`"
         )

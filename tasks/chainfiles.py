@@ -31,6 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
+from winnow.tasks.errors import InputError
 from winnow.tasks.records import Chain
 
 __all__ = [
@@ -89,22 +90,22 @@ def read_chain_file(
     if not p.exists():
         raise FileNotFoundError(f"chain file {str(p)!r} does not exist")
     if p.is_dir():
-        raise ValueError(f"chain file {str(p)!r} is a folder, not a file")
+        raise InputError(f"chain file {str(p)!r} is a folder, not a file")
     suffix = p.suffix.lower()
     readers = {".npy": _read_npy, ".csv": _read_csv, ".h5": _read_hdf5, ".hdf5": _read_hdf5}
     if suffix not in readers:
-        raise ValueError(
+        raise InputError(
             f"chain file {str(p)!r}: unknown suffix {p.suffix!r}; expected one of "
             f"{', '.join(SUFFIXES)}"
         )
     if suffix == ".csv" and dataset is not None:
-        raise ValueError(f"chain file {str(p)!r}: 'dataset' applies to HDF5 files only")
+        raise InputError(f"chain file {str(p)!r}: 'dataset' applies to HDF5 files only")
     if p.stat().st_size == 0:
-        raise ValueError(f"chain file {str(p)!r} is empty")
+        raise InputError(f"chain file {str(p)!r} is empty")
     data, file_names, file_units = readers[suffix](p, dataset)
     if data.ndim == 3:
         if chain_column is not None or draw_column is not None:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}: a 3-D array (chains, draws, d) already separates "
                 "chains; do not give chain_column/draw_column"
             )
@@ -167,11 +168,11 @@ def write_chain_npy(path: str | Path, chain: Chain) -> Path:
 # --------------------------------------------------------------------------------------------
 def _read_npy(p: Path, dataset: str | None) -> tuple[np.ndarray, None, None]:
     if dataset is not None:
-        raise ValueError(f"chain file {str(p)!r}: 'dataset' applies to HDF5 files only")
+        raise InputError(f"chain file {str(p)!r}: 'dataset' applies to HDF5 files only")
     try:
         raw = np.load(p, allow_pickle=False)
     except (ValueError, OSError, EOFError) as exc:
-        raise ValueError(f"chain file {str(p)!r} is not a readable .npy array: {exc}") from None
+        raise InputError(f"chain file {str(p)!r} is not a readable .npy array: {exc}") from None
     return _as_numeric(p, raw, "array"), None, None
 
 
@@ -182,7 +183,7 @@ def _read_csv(p: Path, dataset: str | None) -> tuple[np.ndarray, list[str], list
     try:
         fh = p.open(newline="", encoding="utf-8-sig")
     except OSError as exc:
-        raise ValueError(f"chain file {str(p)!r} cannot be opened: {exc}") from None
+        raise InputError(f"chain file {str(p)!r} cannot be opened: {exc}") from None
     with fh:
         try:
             for lineno, cells in enumerate(csv.reader(fh), start=1):
@@ -195,7 +196,7 @@ def _read_csv(p: Path, dataset: str | None) -> tuple[np.ndarray, list[str], list
                     header_line = lineno
                     continue
                 if len(cells) != len(header):
-                    raise ValueError(
+                    raise InputError(
                         f"chain file {str(p)!r}, line {lineno}: {len(cells)} cells, but the "
                         f"header (line {header_line}) has {len(header)} columns"
                     )
@@ -204,30 +205,30 @@ def _read_csv(p: Path, dataset: str | None) -> tuple[np.ndarray, list[str], list
                     try:
                         row.append(float(cell))
                     except ValueError:
-                        raise ValueError(
+                        raise InputError(
                             f"chain file {str(p)!r}, line {lineno}, column {j + 1} "
                             f"({header[j]!r}): {cell!r} is not a number"
                         ) from None
                 rows.append(row)
         except (UnicodeDecodeError, csv.Error) as exc:
-            raise ValueError(f"chain file {str(p)!r} is not readable CSV text: {exc}") from None
+            raise InputError(f"chain file {str(p)!r} is not readable CSV text: {exc}") from None
     if header is None:
-        raise ValueError(f"chain file {str(p)!r} is empty (no header row)")
+        raise InputError(f"chain file {str(p)!r} is empty (no header row)")
     if not rows:
-        raise ValueError(f"chain file {str(p)!r} has a header but no data rows")
+        raise InputError(f"chain file {str(p)!r} has a header but no data rows")
     names, units = [], []
     for j, cell in enumerate(header):
         m = _UNITS_IN_HEADER.match(cell)
         name, unit = (m.group("name").strip(), m.group("units").strip()) if m else (cell, "")
         if not name:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}, line {header_line}: column {j + 1} has no name"
             )
         names.append(name)
         units.append(unit)
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
-        raise ValueError(f"chain file {str(p)!r}: repeated column names {dup}")
+        raise InputError(f"chain file {str(p)!r}: repeated column names {dup}")
     return np.asarray(rows, dtype=np.float64), names, units
 
 
@@ -239,7 +240,7 @@ def _read_hdf5(
     try:
         fh = h5py.File(p, "r")
     except OSError as exc:
-        raise ValueError(
+        raise InputError(
             f"chain file {str(p)!r} is not a readable HDF5 file (truncated or corrupt?): {exc}"
         ) from None
     with fh:
@@ -252,18 +253,18 @@ def _read_hdf5(
         try:
             fh.visititems(_collect)
         except (OSError, RuntimeError, KeyError) as exc:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}: HDF5 structure unreadable (truncated or corrupt?): {exc}"
             ) from None
         listing = ", ".join(available) if available else "no datasets"
         if dataset is None:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}: give the HDF5 dataset path (datasets in the file: "
                 f"{listing})"
             )
         obj = fh.get(dataset.strip("/") or "/")
         if not isinstance(obj, h5py.Dataset):
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r} has no dataset {dataset!r} (datasets in the file: "
                 f"{listing})"
             )
@@ -272,7 +273,7 @@ def _read_hdf5(
             names = _attr_strings(obj.attrs.get("names"))
             units = _attr_strings(obj.attrs.get("units"))
         except (OSError, RuntimeError, KeyError, TypeError) as exc:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}, dataset {dataset!r}: cannot be read (truncated or "
                 f"corrupt?): {exc}"
             ) from None
@@ -280,7 +281,7 @@ def _read_hdf5(
     width = data.shape[-1]
     for label, values in (("names", names), ("units", units)):
         if values is not None and len(values) != width:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r}, dataset {dataset!r}: attribute {label!r} has "
                 f"{len(values)} entries but the dataset has {width} columns"
             )
@@ -302,16 +303,16 @@ def _as_numeric(p: Path, raw: np.ndarray, what: str) -> np.ndarray:
     if raw.dtype.names is not None or not (
         np.issubdtype(raw.dtype, np.number) or raw.dtype == np.bool_
     ):
-        raise ValueError(f"chain file {str(p)!r}: {what} has dtype {raw.dtype}, expected numbers")
+        raise InputError(f"chain file {str(p)!r}: {what} has dtype {raw.dtype}, expected numbers")
     if np.iscomplexobj(raw):
-        raise ValueError(f"chain file {str(p)!r}: {what} is complex, expected real numbers")
+        raise InputError(f"chain file {str(p)!r}: {what} is complex, expected real numbers")
     if raw.ndim not in (2, 3):
-        raise ValueError(
+        raise InputError(
             f"chain file {str(p)!r}: {what} has shape {raw.shape}; expected (n, d) rows or "
             "(chains, draws, d)"
         )
     if raw.size == 0:
-        raise ValueError(f"chain file {str(p)!r}: {what} is empty (shape {raw.shape})")
+        raise InputError(f"chain file {str(p)!r}: {what} is empty (shape {raw.shape})")
     return np.asarray(raw, dtype=np.float64)
 
 
@@ -327,7 +328,7 @@ def _labels(
         raise TypeError(f"{what} must be a sequence of str, got the single string {given!r}")
     values = tuple(str(v) for v in given)
     if len(values) != d:
-        raise ValueError(
+        raise InputError(
             f"chain file {str(p)!r} has {d} parameter column(s) but {len(values)} {what} "
             f"were given ({list(values)})"
         )
@@ -362,19 +363,19 @@ def _column_position(
         raise TypeError(f"{what} must be a column name or position, got {col!r}")
     if isinstance(col, str):
         if file_names is None:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r} has no column names; give {what} as a column "
                 f"position (0..{width - 1}), not {col!r}"
             )
         if col not in file_names:
-            raise ValueError(
+            raise InputError(
                 f"chain file {str(p)!r} has no column {col!r} for {what} (columns: "
                 f"{', '.join(file_names)})"
             )
         return file_names.index(col)
     j = int(col)
     if not 0 <= j < width:
-        raise ValueError(f"chain file {str(p)!r}: {what} position {j} outside 0..{width - 1}")
+        raise InputError(f"chain file {str(p)!r}: {what} position {j} outside 0..{width - 1}")
     return j
 
 
@@ -382,7 +383,7 @@ def _integer_column(p: Path, values: np.ndarray, what: str) -> np.ndarray:
     bad = ~np.isfinite(values) | (values != np.round(values))
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        raise ValueError(
+        raise InputError(
             f"chain file {str(p)!r}: {what} must hold integers; data row {row + 1} has "
             f"{values[row]!r}"
         )
@@ -405,17 +406,17 @@ def _chain_from_table(
         if col is not None:
             special[what] = _column_position(p, col, file_names, width, what)
     if len(set(special.values())) < len(special):
-        raise ValueError(f"chain file {str(p)!r}: chain_column and draw_column are the same")
+        raise InputError(f"chain file {str(p)!r}: chain_column and draw_column are the same")
     keep = [j for j in range(width) if j not in special.values()]
     if not keep:
-        raise ValueError(f"chain file {str(p)!r} has no parameter columns")
+        raise InputError(f"chain file {str(p)!r} has no parameter columns")
     d = len(keep)
     fallback_names = [file_names[j] for j in keep] if file_names else [f"x{j}" for j in keep]
     fallback_units = [file_units[j] for j in keep] if file_units else [""] * d
     names_t = _labels(p, names, fallback_names, "names", d)
     units_t = _labels(p, units, fallback_units, "units", d)
     if len(set(names_t)) < d:
-        raise ValueError(f"chain file {str(p)!r}: parameter names repeat: {list(names_t)}")
+        raise InputError(f"chain file {str(p)!r}: parameter names repeat: {list(names_t)}")
 
     if "chain_column" in special:
         labels = _integer_column(p, data[:, special["chain_column"]], "chain_column")

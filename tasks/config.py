@@ -33,6 +33,8 @@ from pydantic import (
     model_validator,
 )
 
+from winnow.tasks.errors import InputError
+
 __all__ = [
     "CheckSettings",
     "CollectSettings",
@@ -56,7 +58,7 @@ __all__ = [
 ]
 
 
-class ConfigError(ValueError):
+class ConfigError(InputError):
     """A study config that cannot be used; the message names the file and the field."""
 
 
