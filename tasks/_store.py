@@ -23,6 +23,7 @@ import re
 import shutil
 from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import Any
 
 import h5py
 import numpy as np
@@ -90,6 +91,7 @@ __all__ = [
     "LIBVER",
     "ONE",
     "REV_RE",
+    "ROOT_ATTRS",
     "SCHEMA_VERSION",
     "STR",
     "TABLES",
@@ -98,6 +100,7 @@ __all__ = [
     "StoreBusyError",
     "StoreFormatError",
     "WriterLock",
+    "as_path",
     "attr_json",
     "attr_str",
     "build",
@@ -307,6 +310,16 @@ def _pid_alive(pid: int) -> bool:
 # ------------------------------------------------------------------------------------------
 # opening
 # ------------------------------------------------------------------------------------------
+#: Root attributes of every store (docs/store-layout.md, "Root").
+ROOT_ATTRS = ("schema_version", "study", "created", "winnow_version", "description")
+
+
+def as_path(path: Any, what: str = "store") -> Path:
+    if not isinstance(path, str | Path):
+        raise TypeError(f"{what} path must be str or Path, got {type(path).__name__}")
+    return Path(path)
+
+
 def open_h5(path: Path) -> h5py.File:
     """Open a store read-only after checking it exists, is HDF5 and has a schema we read."""
     if not path.exists():
