@@ -64,8 +64,8 @@ def fail(message: str) -> NoReturn:
 #: :class:`~winnow.tasks.errors.InputError`: ``(module, function)``. Such an error raised
 #: in one of them is bad input. Each entry should become ``raise InputError(`` in its module,
 #: and then leave this list; ``_validate_*`` helpers (DEVELOPERS.md, "Validation at the
-#: boundary") count as validators without an entry. A module name may end in ``*`` (the run
-#: store's modules).
+#: boundary") count as validators without an entry. Module names are ``fnmatch`` patterns:
+#: the run store's code moves between its modules (``store``, ``_store``, ``_store_*``).
 PLAIN_VALIDATORS: frozenset[tuple[str, str]] = frozenset(
     {
         ("winnow.tasks.stages", "preflight"),  # the study config against its files and data
@@ -76,10 +76,10 @@ PLAIN_VALIDATORS: frozenset[tuple[str, str]] = frozenset(
         ("winnow.tasks._kernels", "get_kernel"),  # --kernel
         ("winnow.tasks.diagnostics", "burn_in_count"),  # --burn-in
         ("winnow.tasks.diagnostics", "chain_to_array"),  # --chains
-        ("winnow.tasks._store*", "resolve_revision"),  # -r REV
-        ("winnow.tasks.store", "trace"),  # winnow trace POINT
-        ("winnow.tasks.store", "_find_run"),  # winnow trace POINT
-        ("winnow.tasks.store", "_lineage"),  # winnow trace ROW
+        ("winnow.tasks*store*", "resolve_revision"),  # -r REV
+        ("winnow.tasks*store*", "trace"),  # winnow trace POINT
+        ("winnow.tasks*store*", "_find_run"),  # winnow trace POINT
+        ("winnow.tasks*store*", "_lineage"),  # winnow trace ROW
     }
 )
 
