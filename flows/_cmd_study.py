@@ -34,12 +34,21 @@ def _fmt(v) -> str:
     return str(v)
 
 
+def _interval_text(h: dict, u: str) -> str:
+    lo, hi = h["interval_low"], h["interval_high"]
+    if isinstance(lo, list):
+        return f"{len(lo)} values, see the report"
+    if lo is None or hi is None or lo != lo or hi != hi:  # NaN: not estimable
+        return "not estimable (too few weighted points)"
+    return f"[{_fmt(lo)}, {_fmt(hi)}] {u}"
+
+
 def _print_result(result) -> None:
     from rich.console import Console
     from rich.markup import escape
     from rich.table import Table
 
-    from winnow.tasks.collect import UNCERTAINTY_LABELS
+    from winnow.tasks.collect import GENERAL_CAUTION, UNCERTAINTY_LABELS
 
     console = Console()
     state = "up to date (nothing new to run)" if result.up_to_date else "done"
@@ -48,6 +57,7 @@ def _print_result(result) -> None:
     console.print(f"solver runs: {counts}; reused from earlier runs: {result.reused}")
     for name, e in result.estimates.items():
         u = e["units"]
+        h = e.get("headline")
         table = Table(
             title=escape(f"{name} [{u}], weighted over {e['n_used']} chosen points"),
             show_header=False,
@@ -55,30 +65,56 @@ def _print_result(result) -> None:
         )
         table.add_column("what", style="bold")
         table.add_column("value")
-        table.add_row("mean ± sd", f"{_fmt(e['mean'])} ± {_fmt(e['sd'])} {u}")
-        table.add_row(
-            "quantiles",
-            ", ".join(f"{float(k):.0%}: {_fmt(v)}" for k, v in e["quantiles"].items()),
-        )
-        for thr, p in e.get("exceedance", {}).items():
-            table.add_row(f"P(> {float(thr):g} {u})", _fmt(p))
-        cv = e.get("control_variate")
-        if cv:
+        if h:
+            level = f"{float(h['level']):.0%}"
             table.add_row(
-                "multi-fidelity estimate",
-                f"{_fmt(cv['mean'])} ± {_fmt(cv['se'])} {u} "
-                f"(fidelity correlation {_fmt(cv.get('correlation'))})",
+                "estimate",
+                f"{_fmt(h['estimate'])} {u} ({h['rule']})",
             )
+            table.add_row(f"{level} interval, posterior expectation", escape(_interval_text(h, u)))
+            chain_h = {"interval_low": h["chain_mean_low"], "interval_high": h["chain_mean_high"]}
+            table.add_row(f"{level} interval, chain mean", escape(_interval_text(chain_h, u)))
+        table.add_row(
+            "weighted mean and sd of the QoI", f"{_fmt(e['mean'])}, sd {_fmt(e['sd'])} {u}"
+        )
+        qi = (h or {}).get("quantile_intervals", {})
+        table.add_row(
+            "quantiles" + (f" ({level} intervals)" if qi else ""),
+            "; ".join(
+                f"{float(k):.0%}: {_fmt(v)}"
+                + (f" [{_fmt(qi[k][0][0])}, {_fmt(qi[k][0][1])}]" if k in qi and qi[k] else "")
+                for k, v in e["quantiles"].items()
+            ),
+        )
+        pi = (h or {}).get("exceedance_intervals", {})
+        for thr, p in e.get("exceedance", {}).items():
+            iv = (
+                f" ({level} interval [{_fmt(pi[thr][0][0])}, {_fmt(pi[thr][0][1])}])"
+                if pi.get(thr)
+                else ""
+            )
+            table.add_row(f"P(> {float(thr):g} {u})", _fmt(p) + iv)
         for key, v in e["uncertainty"].items():
             table.add_row(UNCERTAINTY_LABELS.get(key, key), f"{_fmt(v)} {u}")
         if e["n_missing"]:
             table.add_row("left out", f"{e['n_missing']} run(s) without a value")
         console.print(table)
+        if h and not h.get("reliable", True):
+            console.print(f"[bold red]{escape(name)}: NOT RELIABLE[/bold red]")
+            for flag in h.get("flags", []):
+                console.print(f"  - {escape(flag)}")
+        fc = (h or {}).get("forecast")
+        if fc and fc.get("now") is not None:
+            more = {int(k): v for k, v in fc.items() if k != "now"}
+            if more and all(v == v for v in more.values()):
+                k = min(more, key=lambda j: abs(j - 10))
+                console.print(
+                    f"  {k} more runs (`winnow rerun STORE --extend {k}`) would bring the stated "
+                    f"thinning sd from {_fmt(fc['now'])} to about {_fmt(more[k])} {u}"
+                )
     console.print(f"report: {Path(result.report).resolve()}")
-    console.print(
-        "[dim]Caution: estimates feed engineering judgement; decisions on water supply or "
-        "safety need review under local regulations and by a licensed professional.[/dim]"
-    )
+    caution = GENERAL_CAUTION + (f" {result.caution}" if result.caution else "")
+    console.print(f"[dim]Caution: {escape(caution)}[/dim]")
 
 
 def register(app: typer.Typer) -> None:
@@ -137,6 +173,15 @@ def register(app: typer.Typer) -> None:
                 "them given the surviving points.",
             ),
         ] = False,
+        extend: Annotated[
+            int,
+            typer.Option(
+                "--extend",
+                min=0,
+                help="Also add this many points, chosen to shrink the error most with the "
+                "earlier points kept, and run them.",
+            ),
+        ] = 0,
     ) -> None:
         """Run again only the failed, timed-out and unfinished runs of the latest revision."""
         if not store.is_file():
@@ -153,7 +198,7 @@ def register(app: typer.Typer) -> None:
 
         again = f"winnow rerun {shlex.quote(str(store))}" + (" --replace" if replace else "")
         with interruptible(again):
-            _print_result(rerun_flow(str(store), replace=replace))
+            _print_result(rerun_flow(str(store), replace=replace, extend=extend))
 
     @app.command("validate")
     @guarded

@@ -159,6 +159,7 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
         w.write_results(rev, values, estimates)
     result = summarise(store_path, rev, in_selection, outcomes, estimates)
     result.report = str(_report(store_path, rev, config.study.name))
+    result.caution = config.study.caution
     return result
 
 

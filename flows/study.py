@@ -62,6 +62,7 @@ class StudyResult:
     estimates: dict[str, dict[str, Any]] = field(default_factory=dict)
     report: str = ""
     up_to_date: bool = False
+    caution: str = ""
 
 
 def _module_file(spec: str | None, search: Path) -> Path | None:
@@ -151,6 +152,28 @@ def _estimate_summary(est) -> dict[str, Any]:
             for k in ("mean", "se", "correlation")
             if k in est.control_variate
         }
+    h = est.headline
+    if h:
+        out["headline"] = {
+            k: f(h[k])
+            for k in (
+                "level", "estimate", "interval_low", "interval_high", "chain_mean_low",
+                "chain_mean_high", "rule", "flags", "reliable",
+            )
+            if k in h
+        }
+        comps = h.get("components") or []
+        out["headline"]["quantile_intervals"] = {
+            str(q): [list(map(float, c["quantile_intervals"][q])) for c in comps]
+            for q in (comps[0]["quantile_intervals"] if comps else {})
+        }
+        out["headline"]["exceedance_intervals"] = {
+            str(t): [list(map(float, c["exceedance_intervals"][t])) for c in comps]
+            for t in (comps[0]["exceedance_intervals"] if comps else {})
+        }
+        fc = h.get("forecast")
+        if fc:
+            out["headline"]["forecast"] = {"now": fc.get("now"), **fc.get("extra_points", {})}
     return out
 
 
@@ -286,6 +309,7 @@ def study_flow(
     note_progress(stage="writing the report (every stage is committed)")
     result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
     result.report = str(_report(store_path, rev, config.study.name))
+    result.caution = config.study.caution
     counts = result.counts
     if counts.get("succeeded", 0) == 0:
         raise StudyFailed(

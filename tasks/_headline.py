@@ -152,7 +152,11 @@ def probability_interval(
     half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / denom
     return {
         "estimate": p,
-        "interval": (max(0.0, centre - half), min(1.0, centre + half)),
+        # ends within rounding of 0 or 1 are those bounds (Wilson's end is exactly 0 at p = 0)
+        "interval": (
+            0.0 if centre - half < 1e-12 else float(centre - half),
+            1.0 if centre + half > 1 - 1e-12 else float(centre + half),
+        ),
         "n": n,
         "basis": f"Wilson score interval at {n:.1f} effective draws (Kish size of the weights "
         "combined with the chain's ESS)",

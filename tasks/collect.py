@@ -35,11 +35,21 @@ from winnow.tasks._estimates import (
     weighted_quantile,
 )
 from winnow.tasks._readers import QoIReadError, read_axis, read_qoi, validate_qoi_spec
-from winnow.tasks._report import build_report, export_csv, report_markdown, report_tables
+from winnow.tasks._report import CAUTION as GENERAL_CAUTION
+from winnow.tasks._report import (
+    build_report,
+    export_csv,
+    report_markdown,
+    report_tables,
+    representation_warning,
+)
+from winnow.tasks._uncertainty import ChainGeometry, fit_error_model
 from winnow.tasks.records import Diagnostics, QoIEstimate, QoIValue, RunOutcome, Selection
 
 __all__ = [
+    "GENERAL_CAUTION",
     "UNCERTAINTY_LABELS",
+    "ChainGeometry",
     "QoIReadError",
     "ReportData",
     "bootstrap_mean_se",
@@ -47,12 +57,14 @@ __all__ = [
     "chain_ess",
     "estimate_qoi",
     "export_csv",
+    "fit_error_model",
     "kish_ess",
     "read_axis",
     "read_qoi",
     "read_qois",
     "report_markdown",
     "report_tables",
+    "representation_warning",
     "validate_qoi_spec",
     "weighted_mean_sd",
     "weighted_quantile",
