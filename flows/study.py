@@ -362,8 +362,9 @@ def _observation_table(config: StudyConfig, base: Path) -> dict[str, Any] | None
     o = config.sample.observations
     if o is None:
         return None
-    needed = [o.target, *o.inputs] + ([o.noise.column] if o.noise.column else [])
-    return stages.read_observations(resolve(base / "x", o.file), needed).columns
+    return stages.read_observations(
+        resolve(base / "x", o.file), stages.observation_columns(o)
+    ).columns
 
 
 def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | None:

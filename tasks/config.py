@@ -799,6 +799,37 @@ class StudyConfig(_Model):
 # --------------------------------------------------------------------------------------------
 # loading
 # --------------------------------------------------------------------------------------------
+# lists whose entries the messages name by their 'name' key instead of their position
+_NAMED_LISTS = {("parameters",), ("collect", "qoi")}
+
+
+def _entry_label(entry: Any, index: int) -> str:
+    name = entry.get("name") if isinstance(entry, dict) else None
+    if isinstance(name, str) and name:
+        return f"[{name}]" if re.match(_NAME_PATTERN, name) else f"[{name!r}]"
+    return f"[{index}]"
+
+
+def _field_path(loc: Sequence[Any], data: Any) -> str:
+    """``parameters.0.prior`` as ``parameters[log10_T].prior``, using the config's names."""
+    out = ""
+    node = data
+    for i, part in enumerate(loc):
+        head = tuple(p for p in loc[:i] if not isinstance(p, int))
+        if isinstance(part, int) and head in _NAMED_LISTS:
+            entry = node[part] if isinstance(node, list) and 0 <= part < len(node) else None
+            out += _entry_label(entry, part)
+        else:
+            out += ("." if out else "") + str(part)
+        if isinstance(node, dict):
+            node = node.get(part)
+        elif isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
+            node = node[part]
+        else:
+            node = None
+    return out
+
+
 def _models_in(annotation: Any) -> list[type[BaseModel]]:
     """The pydantic models an annotation can hold (through Optional, unions, lists, Annotated)."""
     if isinstance(annotation, type) and issubclass(annotation, BaseModel):
@@ -843,10 +874,12 @@ def _unknown_key_hint(loc: Sequence[Any]) -> str:
     return f"; expected one of: {', '.join(keys)}"
 
 
-def format_validation_error(exc: ValidationError, source: str) -> str:
+def format_validation_error(exc: ValidationError, source: str, data: Any = None) -> str:
     """One line per problem: ``source: field.path: message (got value)``.
 
-    An unknown key gets the closest accepted keys as a suggestion.
+    ``data`` is the mapping that was validated: with it, entries of ``parameters`` and
+    ``collect.qoi`` are named by their ``name`` (``parameters[log10_T].prior``) instead of
+    their position. An unknown key gets the closest accepted keys as a suggestion.
     """
     lines = []
     for err in exc.errors(include_url=False):
@@ -857,7 +890,7 @@ def format_validation_error(exc: ValidationError, source: str) -> str:
             for i, p in enumerate(parts)
             if not (i and parts[i - 1] == "runner" and p in _RUNNER_TAGS)
         ]
-        loc = ".".join(str(p) for p in parts)
+        loc = _field_path(parts, data)
         msg = err["msg"].removeprefix("Value error, ")
         got = err.get("input")
         shown = "" if err["type"] == "missing" or isinstance(got, dict) else f" (got {got!r})"
@@ -882,7 +915,7 @@ def parse_config(
     try:
         return StudyConfig.model_validate(data, context=context)
     except ValidationError as exc:
-        raise ConfigError(format_validation_error(exc, source)) from None
+        raise ConfigError(format_validation_error(exc, source, data)) from None
 
 
 def load_config(

@@ -28,6 +28,7 @@ __all__ = [
     "cheap_predictions",
     "collect_stage",
     "deck_spec",
+    "observation_columns",
     "preflight",
     "prepare_runs",
     "read_observations",
@@ -59,13 +60,27 @@ class Observations:
         return len(next(iter(self.columns.values()))) if self.columns else 0
 
 
-def read_observations(path: Path, required: Sequence[str]) -> Observations:
+def observation_columns(o: Any) -> dict[str, str]:
+    """The columns a config's ``sample.observations`` names, keyed by the field naming each."""
+    where = "sample.observations"
+    cols = {f"{where}.target": o.target}
+    cols.update({f"{where}.inputs[{k}]": c for k, c in enumerate(o.inputs)})
+    if o.noise.column:
+        cols[f"{where}.noise.column"] = o.noise.column
+    return cols
+
+
+def read_observations(path: Path, required: Sequence[str] | Mapping[str, str]) -> Observations:
     """Read a CSV observation file with a header row; every cell must be a finite number.
+
+    ``required`` lists the columns that must be there, or maps the config field naming each
+    to it (:func:`observation_columns`), so that a missing column names its field.
 
     Raises
     ------
     ValueError
-        Naming the file, the line and the column of the first bad cell, or a missing column.
+        Naming the file, the line and the column of the first bad cell, or a missing column
+        (and the field that named it).
     """
     if not path.is_file():
         raise FileNotFoundError(f"{path}: observation file not found")
@@ -74,6 +89,16 @@ def read_observations(path: Path, required: Sequence[str]) -> Observations:
     if len(rows) < 2:
         raise ValueError(f"{path}: expected a header row and at least one data row")
     header = [h.strip() for h in rows[0]]
+    if isinstance(required, Mapping):
+        bad = [(f, c) for f, c in required.items() if c not in header]
+        if bad:
+            raise ValueError(
+                "\n".join(
+                    f"{f}: {c!r} is not a column of {path} (columns: {', '.join(header)})"
+                    for f, c in bad
+                )
+            )
+        required = list(required.values())
     missing = [c for c in required if c not in header]
     if missing:
         raise ValueError(f"{path}: missing column(s) {missing}; the file has {header}")
@@ -155,10 +180,9 @@ def sample_stage(
         if s.model.forward is not None:
             assert s.observations is not None
             obs_cfg = s.observations
-            needed = [obs_cfg.target, *obs_cfg.inputs]
-            if obs_cfg.noise.column:
-                needed.append(obs_cfg.noise.column)
-            obs = read_observations(resolve(base_dir / "x", obs_cfg.file), needed)
+            obs = read_observations(
+                resolve(base_dir / "x", obs_cfg.file), observation_columns(obs_cfg)
+            )
             inputs: dict[str, Any] = {k: obs.columns[k] for k in obs_cfg.inputs}
             inputs.update(obs_cfg.constants)
             if obs_cfg.noise.value is not None:
@@ -520,8 +544,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
             raise ValueError(f"{field}: {exc}") from None
     if s.observations is not None:
         o = s.observations
-        needed = [o.target, *o.inputs] + ([o.noise.column] if o.noise.column else [])
-        read_observations(resolve(here, o.file), needed)
+        read_observations(resolve(here, o.file), observation_columns(o))
     if s.import_chain is not None:
         from .chainfiles import read_chain_file
 

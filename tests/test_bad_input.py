@@ -79,7 +79,7 @@ CONFIG_CASES = {
     "budget above distinct rows": ({"budget": 401}, ["budget", "400 distinct", "chain.npy"]),
     "prior low >= high": (
         {"parameters__0__prior": {"dist": "uniform", "low": 2.0, "high": 2.0}},
-        ["parameters.0.prior", "low must be < high"],
+        ["parameters[x].prior", "low must be < high"],
     ),
     "unknown kernel": ({"thin__kernel": "cosine"}, ["thin.kernel", "'gaussian'"]),
     "unknown method": ({"thin__method": "best"}, ["thin.method", "'greedy'"]),

@@ -63,11 +63,11 @@ BAD = [
     (("budget",), -3, "budget", "greater than 0"),
     (("budget",), _DELETE, "budget", "Field required"),
     (("store",), _DELETE, "store", "Field required"),
-    (("parameters", 0, "prior", "low"), 5.0, "parameters.0.prior", "low must be < high"),
+    (("parameters", 0, "prior", "low"), 5.0, "parameters[log10_T].prior", "low must be < high"),
     (
         ("parameters", 1, "prior"),
         {"dist": "normal", "mu": 0.0},
-        "parameters.1.prior",
+        "parameters[log10_S].prior",
         "sigma",
     ),
     (("thin", "kernel"), "cosine", "thin.kernel", "'gaussian', 'laplace'"),
@@ -81,7 +81,7 @@ BAD = [
     (
         ("collect", "qoi", 0, "reader"),
         {"xml": {}},
-        "collect.qoi.0.reader",
+        "collect.qoi[drawdown_spring].reader",
         "exactly one reader",
     ),
     (("sample", "model"), {"forward": "not a path"}, "sample.model.forward", "pattern"),
@@ -159,18 +159,66 @@ def test_run_with_bad_config_exits_2_and_writes_nothing(tmp_path):
     assert sorted(os.listdir(tmp_path)) == before
 
 
-def _refused_by_run(tmp_path: Path, data: dict) -> str:
-    """``winnow run`` on ``data`` written as a config: exit 2, nothing written; the message."""
+def _refused_by_run(tmp_path: Path, data: dict, command: str = "run", *, in_file=True) -> str:
+    """``winnow run`` (or ``command``) on ``data`` written as a config: exit 2, nothing
+    written; the message (which starts with the config file's name when ``in_file``: the
+    loader's errors do, the checks of the files a config names start with the field)."""
     data["store"] = str(tmp_path / "study.h5")
     data["work_dir"] = str(tmp_path / "runs")
     cfg = tmp_path / "study.yaml"
     cfg.write_text(yaml.safe_dump(data, sort_keys=False))
     before = sorted(os.listdir(tmp_path))
-    result = CliRunner().invoke(app, ["run", str(cfg)])
+    result = CliRunner().invoke(app, [command, str(cfg)])
     assert result.exit_code == 2, result.output
     assert sorted(os.listdir(tmp_path)) == before
-    assert result.stderr.startswith(f"winnow: error: {cfg}: ")
+    assert result.stderr.startswith(f"winnow: error: {cfg}: " if in_file else "winnow: error: ")
     return result.stderr
+
+
+def test_parameter_fields_are_named_by_the_parameter_name(tmp_path):
+    """Issue 17 item 10 (b): parameters[log10_S].prior.dist, not parameters.1.prior.dist."""
+    data = demo_data()
+    data["parameters"][1]["prior"]["dist"] = "beta"
+    data["collect"]["qoi"][0]["reader"] = {"xml": {}}
+    err = _refused_by_run(tmp_path, data)
+    assert "parameters[log10_S].prior.dist: Input should be 'uniform'" in err, err
+    assert "collect.qoi[drawdown_spring].reader: give exactly one reader" in err, err
+    assert "parameters.1" not in err and "qoi.0" not in err
+    # an entry without a usable name keeps its position
+    data = demo_data()
+    del data["parameters"][0]["name"]
+    with pytest.raises(ConfigError) as exc:
+        parse_config(data, source="s.yaml")
+    assert "s.yaml: parameters[0].name: Field required" in str(exc.value)
+
+
+@pytest.mark.parametrize(
+    ("field", "value"),
+    [
+        ("noise", {"column": "sigma"}),
+        ("target", "drawdown"),
+        ("inputs", ["t_s", "time"]),
+    ],
+)
+def test_missing_observation_column_names_its_field(tmp_path, field, value):
+    """Issue 17 item 10 (a): a column the file lacks is named with the field that asks for
+    it and the columns the file has (examples/aquifer/data/observations.csv)."""
+    data = demo_data()
+    obs = ROOT / "examples" / "aquifer" / "data" / "observations.csv"
+    data["sample"]["observations"]["file"] = str(obs)
+    data["dispatch"]["template_dir"] = str(ROOT / "examples" / "aquifer" / "templates")
+    data["sample"]["observations"][field] = value
+    header = obs.read_text().splitlines()[0].split(",")
+    assert {"sigma", "drawdown", "time"}.isdisjoint(header)
+    where, bad = {
+        "noise": ("sample.observations.noise.column", "sigma"),
+        "target": ("sample.observations.target", "drawdown"),
+        "inputs": ("sample.observations.inputs[1]", "time"),
+    }[field]
+    for command in ("validate", "run"):
+        err = _refused_by_run(tmp_path, copy.deepcopy(data), command, in_file=False)
+        assert f"{where}: {bad!r} is not a column of {obs} (columns: {', '.join(header)})" in err
+        assert "missing column" not in err
 
 
 @pytest.mark.parametrize(
@@ -180,7 +228,8 @@ def _refused_by_run(tmp_path: Path, data: dict) -> str:
         (
             ("parameters", 1),
             "unit",
-            "parameters.1.unit: Extra inputs are not permitted (got 1); did you mean 'units'?",
+            "parameters[log10_S].unit: Extra inputs are not permitted (got 1); "
+            "did you mean 'units'?",
         ),
         (
             ("sample", "observations", "noise"),
