@@ -6,7 +6,6 @@ absolute path as its parameter. Each scheduled run reads the file again, so new 
 text or an input file's content changed, and otherwise reports that the study is up to date.
 """
 
-from __future__ import annotations
 
 from pathlib import Path
 

@@ -10,8 +10,6 @@ with changed inputs (new observations, an edited config) creates a new revision;
 whose deck hash and solver command match a success in any revision are reused.
 """
 
-from __future__ import annotations
-
 import importlib.util
 import time
 from dataclasses import dataclass, field
