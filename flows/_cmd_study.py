@@ -235,11 +235,17 @@ def register(app: typer.Typer) -> None:
                 "schedules): start one with `prefect server start` and set PREFECT_API_URL, e.g. "
                 "`prefect config set PREFECT_API_URL=http://127.0.0.1:4200/api`"
             )
+        from prefect.client.schemas.objects import ConcurrencyLimitConfig
+
         from winnow.flows.schedule import scheduled_study
 
+        # One run at a time: a study longer than its schedule period would otherwise start a
+        # second run at each tick, which fails on the run store's writer lock. ENQUEUE holds the
+        # next tick until the running one ends (it then finds the study up to date or resumes).
         scheduled_study.serve(
             name=name or f"{cfg.study.name}-schedule",
             cron=cron,
+            global_limit=ConcurrencyLimitConfig(limit=1, collision_strategy="ENQUEUE"),
             parameters={"config_path": str(config.resolve())},
             description=cfg.study.description or None,
             tags=["winnow", cfg.study.name],

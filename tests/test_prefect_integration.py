@@ -439,3 +439,9 @@ def test_prefect_yaml_example_points_at_the_scheduled_flow():
     from prefect.client.schemas.schedules import CronSchedule
 
     assert CronSchedule(cron=dep["schedules"][0]["cron"]).cron == "0 6 * * *"
+    # one run at a time (issue 18 item 2): the shape Prefect's deploy command reads
+    # (prefect/cli/deploy/_core.py turns a dict into a limit and concurrency options)
+    from prefect.client.schemas.objects import ConcurrencyLimitConfig
+
+    limit = ConcurrencyLimitConfig(**dep["concurrency_limit"])
+    assert limit.limit == 1 and limit.collision_strategy.value == "ENQUEUE"

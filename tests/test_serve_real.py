@@ -1,4 +1,4 @@
-"""``winnow serve`` against a real Prefect server on loopback (issue 18).
+"""``winnow serve`` against a real Prefect server on loopback (issue 18 items 1, 2).
 
 A real ``prefect server start`` (temporary PREFECT_HOME, in-memory database) and a real
 ``winnow serve`` process; a run of the served deployment is triggered through the API and
@@ -150,3 +150,14 @@ def test_served_study_run_completes(served):
         fr = _wait("the served run to finish", final, 80, log=log)
         assert fr.state.is_completed(), (fr.state, log.read_text()[-4000:])
 
+
+
+def test_served_deployment_allows_one_run_at_a_time(served):
+    """Overlapping scheduled runs queue instead of failing on the store lock (item 2)."""
+    dep, api, _ = served
+    with _client(api) as client:
+        dep = client.read_deployment(dep.id)
+    opts = dep.concurrency_options
+    assert dep.global_concurrency_limit is not None
+    assert dep.global_concurrency_limit.limit == 1
+    assert opts is not None and opts.collision_strategy.value == "ENQUEUE"
