@@ -264,6 +264,7 @@ def study_flow(
             )
             store.write_chain(rev, chain)
             store.clear_checkpoint(rev, "sample")
+        _log_chain(log, chain, stored="chain" in done)
         _diagnostics_artifact(chain, config.study.name)
 
         # ---- thin ----------------------------------------------------------------------
@@ -273,6 +274,7 @@ def study_flow(
             note_progress(stage="thinning")
             selection = thin_stage_task(config, chain, revision=rev)
             store.write_selection(rev, selection)
+        _log_selection(log, selection, stored="selection" in done)
         _selection_artifact(chain, selection, config.study.name)
 
         # ---- dispatch --------------------------------------------------------------------
@@ -303,6 +305,7 @@ def study_flow(
                 recorded=recorded_values(store, outcomes.values()),
             )
             store.write_results(rev, values, estimates)
+        _log_estimates(log, estimates, stored="results" in done)
 
     note_progress(stage="writing the report (every stage is committed)")
     result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
@@ -446,13 +449,99 @@ def _dispatch_all(
             part = dict(common, known_successes={k: v for k, v in known.items() if k in keys})
             result.extend(dispatch_flow(batch, runner=runner, concurrency=d.concurrency, **part))
     outcomes = {o.run_id: o for o in result}
+    states: dict[str, int] = {}
+    for o in result:
+        states[o.state] = states.get(o.state, 0) + 1
     log.info(
-        "dispatch: %d runs; %d reused without running",
+        "dispatch: %d runs (%s); %d reused without running",
         total,
+        ", ".join(f"{k} {v}" for k, v in sorted(states.items())),
         sum(1 for o in result if o.reused_from),
     )
+    bad = total - states.get("succeeded", 0)
+    if bad:
+        log.warning(
+            "dispatch: %d of %d runs did not succeed; their outcomes are recorded "
+            "(`winnow rerun STORE` runs them again)",
+            bad,
+            total,
+        )
     _outcomes_artifact(config.study.name, specs, outcomes)
     return outcomes
+
+
+# --------------------------------------------------------------------------------------------
+# run logs: one INFO line per stage; WARNING for what makes the result less trustworthy
+# --------------------------------------------------------------------------------------------
+def _log_chain(log, chain, *, stored: bool) -> None:
+    d = chain.diagnostics
+    origin = "read from the store" if stored else chain.source
+    if d is None:
+        log.info("sample: %d rows (%s)", len(chain.samples), origin)
+        return
+    log.info(
+        "sample: %d chains x %d draws after %d burn-in (%s); convergence checks %s",
+        d.n_chains,
+        d.n_draws,
+        d.burn_in,
+        origin,
+        "passed" if d.passed else "FAILED",
+    )
+    if not d.passed:
+        for message in d.messages:
+            log.warning("convergence check failed: %s", message)
+        log.warning(
+            "the chain did not converge and the study goes on (sample.checks.on_failure: "
+            "warn); treat its estimates with caution"
+        )
+
+
+def _log_selection(log, selection, *, stored: bool) -> None:
+    log.info(
+        "thin: %d points chosen by %s (%s weights); MMD %.4g (exact kernel)%s",
+        selection.m,
+        selection.method,
+        selection.weights_rule,
+        selection.mmd_exact,
+        " (read from the store)" if stored else "",
+    )
+
+
+def _log_estimates(log, estimates, *, stored: bool) -> None:
+    for e in estimates:
+        h = e.headline or {}
+        if "estimate" in h:
+            what = f"estimate {_fmt_value(h['estimate'])} {e.units} ({h.get('rule', '')})"
+        else:
+            what = f"weighted mean {_fmt_value(e.mean)} {e.units}"
+        log.info(
+            "collect: %s: %s over %d runs%s",
+            e.name,
+            what,
+            e.n_used,
+            " (read from the store)" if stored else "",
+        )
+        if e.n_missing:
+            log.warning(
+                "collect: %s: %d run(s) left out (no value: failed, timed out or unreadable)",
+                e.name,
+                e.n_missing,
+            )
+        for flag in h.get("flags") or ():
+            log.warning("collect: %s: error model flag: %s", e.name, flag)
+        if h and not h.get("reliable", True):
+            log.warning("collect: %s: the stated interval is NOT RELIABLE (see the flags)", e.name)
+
+
+def _fmt_value(x: Any) -> str:
+    v = x.tolist() if hasattr(x, "tolist") else x
+    if isinstance(v, list):
+        shown = ", ".join(f"{float(a):.4g}" for a in v[:4])
+        return f"[{shown}{', ...' if len(v) > 4 else ''}]"
+    try:
+        return f"{float(v):.4g}"
+    except (TypeError, ValueError):
+        return str(v)
 
 
 # --------------------------------------------------------------------------------------------
