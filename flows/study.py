@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from prefect import flow, get_run_logger
+from prefect import flow, get_run_logger, tags
 from prefect.artifacts import (
     create_markdown_artifact,
     create_progress_artifact,
@@ -41,6 +41,7 @@ __all__ = [
     "recorded_values",
     "study_flow",
     "study_inputs",
+    "study_tags",
     "summarise",
 ]
 
@@ -110,15 +111,24 @@ def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
     return files
 
 
-def _name_flow_run(name: str) -> None:
-    """Rename the running flow run once its revision is known (best effort)."""
+def study_tags(config: StudyConfig) -> list[str]:
+    """Prefect tags of a study's flow and task runs: its name, then ``study.tags``."""
+    return list(dict.fromkeys([config.study.name, *config.study.tags]))
+
+
+def _name_flow_run(name: str, run_tags: list[str]) -> None:
+    """Rename the running flow run once its revision is known and add the study's tags
+    (best effort)."""
     if flow_run.id is None:
         return
     from prefect.client.orchestration import get_client
 
     try:
         with get_client(sync_client=True) as client:
-            client.update_flow_run(flow_run.id, name=name)
+            have = list(client.read_flow_run(flow_run.id).tags or [])
+            client.update_flow_run(
+                flow_run.id, name=name, tags=list(dict.fromkeys([*have, *run_tags]))
+            )
     except Exception as exc:  # noqa: BLE001 - a name is cosmetic; never fail a study on it
         get_run_logger().debug("could not rename the flow run: %s", exc)
 
@@ -230,7 +240,9 @@ def study_flow(
             store_path, config.study.name, force=force, description=config.study.description
         )
 
-    with RunStore.open_for_write(store_path) as store:
+    # every task run and subflow run below (the solver runs too) carries the study's tags, so
+    # a Prefect tag concurrency limit can hold, e.g., solver licences across studies
+    with tags(*study_tags(config)), RunStore.open_for_write(store_path) as store:
         rev = _choose_revision(store, config_text, inputs)
         if rev is None:
             rev = store.new_revision(
@@ -244,7 +256,7 @@ def study_flow(
         else:
             log.info("study %s: resuming revision %s", config.study.name, rev)
         done = store.stages_done(rev)
-        _name_flow_run(f"{config.study.name}-{rev}")
+        _name_flow_run(f"{config.study.name}-{rev}", study_tags(config))
 
         # ---- sample ------------------------------------------------------------------
         if "chain" in done:

@@ -759,6 +759,20 @@ class StudySettings(_Model):
         description="The study's own caution, shown in the report after the standard one "
         "(e.g. which decisions the results must not be used for without further review).",
     )
+    tags: list[str] = Field(
+        default_factory=list,
+        description="Prefect tags put, with the study name, on the study's flow run and on "
+        "every task run, solver runs included: a Prefect tag concurrency limit on one of them "
+        "(e.g. 'fem-licence') caps the solver runs in flight across studies.",
+    )
+
+    @field_validator("tags")
+    @classmethod
+    def _tags_not_blank(cls, v: list[str]) -> list[str]:
+        bad = [t for t in v if not t.strip()]
+        if bad:
+            raise ValueError(f"study.tags: expected non-empty tag names, got {v!r}")
+        return v
 
 
 class StudyConfig(_Model):

@@ -445,3 +445,41 @@ def test_prefect_yaml_example_points_at_the_scheduled_flow():
 
     limit = ConcurrencyLimitConfig(**dep["concurrency_limit"])
     assert limit.limit == 1 and limit.collision_strategy.value == "ENQUEUE"
+
+
+@pytest.mark.slow
+def test_study_tags_are_on_its_flow_run_and_solver_task_runs(prefect_harness, tmp_path):
+    """study.tags and the study name reach the flow run and every solver task run, where a
+    Prefect tag concurrency limit applies (issue 18 item 4); read back through the client."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import (
+        FlowRunFilter,
+        FlowRunFilterTags,
+        TaskRunFilter,
+        TaskRunFilterName,
+    )
+
+    from winnow.flows.study import study_flow
+    from winnow.tasks.config import load_config
+
+    folder = tmp_path / "tagged"
+    path = make_study(
+        folder,
+        budget=3,
+        **{"study.name": "line-tagged", "study.tags": ["fem-licence"], "sample.draws": 600},
+    )
+    cfg, text = load_config(path)
+    study_flow(cfg, base_dir=str(folder), config_text=text, config_path=str(path))
+    with get_client(sync_client=True) as client:
+        runs = client.read_flow_runs(
+            flow_run_filter=FlowRunFilter(tags=FlowRunFilterTags(all_=["line-tagged"]))
+        )
+        study_runs = [r for r in runs if r.name.startswith("line-tagged-r0001")]
+        assert study_runs and {"line-tagged", "fem-licence"} <= set(study_runs[0].tags)
+        solver = client.read_task_runs(
+            task_run_filter=TaskRunFilter(name=TaskRunFilterName(like_="run-p")),
+            flow_run_filter=FlowRunFilter(tags=FlowRunFilterTags(all_=["line-tagged"])),
+        )
+        assert len(solver) == 3
+        for t in solver:
+            assert {"line-tagged", "fem-licence"} <= set(t.tags), (t.name, t.tags)
