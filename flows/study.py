@@ -271,6 +271,7 @@ def study_flow(
                 config,
                 base,
                 revision=rev,
+                progress=_StageProgress(config.study.name, "sample", log),
                 checkpoint=checkpoint,
                 resume=store.load_checkpoint(rev, "sample"),
             )
@@ -284,7 +285,9 @@ def study_flow(
             selection = store.read_selection(rev)
         else:
             note_progress(stage="thinning")
-            selection = thin_stage_task(config, chain, revision=rev)
+            selection = thin_stage_task(
+                config, chain, revision=rev, progress=_StageProgress(config.study.name, "thin", log)
+            )
             store.write_selection(rev, selection)
         _log_selection(log, selection, stored="selection" in done)
         _selection_artifact(chain, selection, config.study.name)
@@ -562,6 +565,41 @@ def _fmt_value(x: Any) -> str:
 def _key(name: str) -> str:
     out = "".join(c if c.isalnum() else "-" for c in name.lower())
     return "-".join(p for p in out.split("-") if p) or "study"
+
+
+class _StageProgress:
+    """``progress(done, total, what)`` callback of the sample and thin stages: a progress
+    artifact ``<study>-<stage>-progress`` (updated at most once a second) and the step's name
+    in the flow run log at INFO (at most every :attr:`LOG_EVERY` seconds).
+
+    It is called from the stage's own threads, so it logs through the flow run's logger
+    taken when it was made, and a failed artifact update never stops the study.
+    """
+
+    LOG_EVERY = 5.0
+    UPDATE_EVERY = 1.0
+
+    def __init__(self, study: str, stage: str, log) -> None:
+        self.stage, self.log = stage, log
+        self.artifact = create_progress_artifact(
+            progress=0.0,
+            key=f"{_key(study)}-{stage}-progress",
+            description=f"{stage.capitalize()} stage of study {study}",
+        )
+        self._logged = self._updated = -float("inf")
+
+    def __call__(self, done: int, total: int, what: str) -> None:
+        now = time.monotonic()
+        pct = 100.0 * min(done / max(total, 1), 1.0)
+        if now - self._logged >= self.LOG_EVERY:
+            self._logged = now
+            self.log.info("%s: %s (%.0f%%)", self.stage, what, pct)
+        if done >= total or now - self._updated >= self.UPDATE_EVERY:
+            self._updated = now
+            try:
+                update_progress_artifact(self.artifact, pct)
+            except Exception as exc:  # noqa: BLE001 - progress is cosmetic
+                self.log.debug("could not update the %s progress: %s", self.stage, exc)
 
 
 def _tables(**fields: Any) -> dict[str, list[dict[str, Any]]]:

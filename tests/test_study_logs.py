@@ -1,4 +1,5 @@
-"""What the study flow writes to its Prefect run log (issue 18 items 3 and 5).
+"""What the study flow writes to its Prefect run log and progress artifacts (issue 18
+items 3 and 5).
 
 The records are taken from Prefect's flow-run and task-run loggers (``get_run_logger``), the
 loggers whose records the API handler ships to the server, while the study runs through the
@@ -79,3 +80,17 @@ def test_failed_convergence_and_failed_runs_are_logged_as_warnings(
     # one summary line per stage
     for stage in ("sample:", "thin:", "dispatch:", "collect: y2:"):
         assert any(i.startswith(stage) for i in infos), (stage, infos)
+
+    # item 5: sample and thin report their steps in the log and in progress artifacts
+    assert any(i.startswith("sample: ") and i.endswith("%)") for i in infos), infos
+    assert any(i.startswith("thin: ") and i.endswith("%)") for i in infos), infos
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey
+
+    with get_client(sync_client=True) as client:
+        for stage in ("sample", "thin"):
+            key = f"line-test-{stage}-progress"
+            (art,) = client.read_latest_artifacts(
+                artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=[key]))
+            )
+            assert art.type == "progress" and float(art.data) == 100.0, (key, art.data)
