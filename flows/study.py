@@ -462,7 +462,10 @@ def _dispatch_all(
             batch = list(specs[a : a + _DISPATCH_BATCH])
             keys = {s.key for s in batch}
             part = dict(common, known_successes={k: v for k, v in known.items() if k in keys})
-            result.extend(dispatch_flow(batch, runner=runner, concurrency=d.concurrency, **part))
+            named = dispatch_flow.with_options(  # not a random name: study and batch
+                flow_run_name=f"{_key(config.study.name)}-dispatch-{a // _DISPATCH_BATCH + 1}"
+            )
+            result.extend(named(batch, runner=runner, concurrency=d.concurrency, **part))
     outcomes = {o.run_id: o for o in result}
     states: dict[str, int] = {}
     for o in result:

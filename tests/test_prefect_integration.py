@@ -481,5 +481,8 @@ def test_study_tags_are_on_its_flow_run_and_solver_task_runs(prefect_harness, tm
             flow_run_filter=FlowRunFilter(tags=FlowRunFilterTags(all_=["line-tagged"])),
         )
         assert len(solver) == 3
+        # the dispatch subflow is named after the study and its batch (issue 18 item 6)
+        names = {r.name for r in runs}
+        assert "line-tagged-dispatch-1" in names, names
         for t in solver:
             assert {"line-tagged", "fem-licence"} <= set(t.tags), (t.name, t.tags)
