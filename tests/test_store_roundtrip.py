@@ -77,6 +77,9 @@ def assert_same(a: Any, b: Any, where: str = "record") -> None:
         return
     if isinstance(a, np.generic) or isinstance(b, np.generic):
         assert type(a) is type(b), f"{where}: {type(a)} != {type(b)}"
+        if isinstance(a, np.floating) and np.isnan(a):  # NaN != NaN: a NaN scalar comes back NaN
+            assert np.isnan(b), f"{where}: {b!r} is not NaN"
+            return
     assert a == b, f"{where}: {a!r} != {b!r}"
 
 
