@@ -467,6 +467,9 @@ def _dispatch_all(
             )
             result.extend(named(batch, runner=runner, concurrency=d.concurrency, **part))
     outcomes = {o.run_id: o for o in result}
+    # every run has an outcome now: the bar ends at its true share even when a runner reported
+    # some outcomes without the callback (reused runs, runs journalled by a worker)
+    update_progress_artifact(progress_id, 100.0 * len(outcomes) / max(total, 1))
     states: dict[str, int] = {}
     for o in result:
         states[o.state] = states.get(o.state, 0) + 1
