@@ -83,7 +83,6 @@ __all__ = [
     "fit_error_model",
     "forecast_errors",
     "kernel_mean_gaussian",
-    "weighted_rule_error",
 ]
 
 ErrorKernelName = Literal["gaussian", "matern52"]
@@ -411,45 +410,6 @@ def _rule_sd(
     """Eq. (3): ``(sd, mmd)`` of the effective rule ``v`` under the fitted process."""
     mmd2 = geo.mmd2(kernel, fit.length, fit.nugget, xs, v)
     return float(np.sqrt(fit.sigma2 * mmd2)), float(np.sqrt(mmd2))
-
-
-def weighted_rule_error(
-    points: npt.ArrayLike,
-    values: npt.ArrayLike,
-    weights: npt.ArrayLike,
-    geo: ChainGeometry,
-    *,
-    kernel: ErrorKernelName = "matern52",
-) -> float:
-    """Stated sd of the plain weighted rule's error against the chain mean (eq. 3, ``b = 0``).
-
-    Parameters
-    ----------
-    points : array_like, shape (m, d)
-        Points in the chain's own units.
-    values : array_like, shape (m,)
-    weights : array_like, shape (m,)
-    geo : ChainGeometry
-
-    Returns
-    -------
-    float
-        NaN when fewer than two points carry weight or the fit fails.
-    """
-    kern = _validate_kernel(kernel)
-    x = geo.standardise(points)
-    y = np.asarray(values, dtype=np.float64).ravel()
-    w = np.asarray(weights, dtype=np.float64).ravel()
-    keep = w > 0
-    if keep.sum() < 2:
-        return float("nan")
-    x, y, w = x[keep], y[keep], w[keep] / w[keep].sum()
-    fit = _reml_fit(
-        y, np.ones((y.size, 1)), kern, x, _LENGTH_FACTORS * geo.median_distance, _NUGGETS
-    )
-    if fit is None:
-        return float("nan")
-    return _rule_sd(fit, geo, kernel, x, w)[0]
 
 
 def margin(dof: int) -> float:
