@@ -50,7 +50,7 @@ BUDGETS = (10, 30, 100)
 def _ess_params(x: np.ndarray, ci: np.ndarray) -> float:
     """Smallest split-chain ESS of the parameters (the sample stage gives the rank-normalised
     bulk ESS of each parameter; for these chains the two are close)."""
-    from winnow.tasks._estimates import chain_ess
+    from winnow.tasks.collect._estimates import chain_ess
 
     return float(np.min(chain_ess(x, ci)))
 QS = (0.05, 0.5, 0.95)
@@ -80,9 +80,9 @@ def _true_quantiles(target, f, grid: int = 1201) -> tuple[np.ndarray, float]:
 def _one(args: tuple[str, int]) -> list[dict]:
     from scipy import stats
 
-    from winnow.tasks._estimates import estimate_qoi
-    from winnow.tasks._uncertainty import ChainGeometry
-    from winnow.tasks.thinning import reweight, thin
+    from winnow.tasks.collect._estimates import estimate_qoi
+    from winnow.tasks.collect._uncertainty import ChainGeometry
+    from winnow.tasks.thin import reweight, thin
 
     tname, seed = args
     T = TARGETS[tname]()

@@ -30,7 +30,7 @@ import time
 
 import numpy as np
 
-from winnow.tasks.sampling import SAMPLERS, build_log_posterior, sample
+from winnow.tasks.sample import SAMPLERS, build_log_posterior, sample
 
 LOOSE = {"rhat_max": 10.0, "ess_bulk_min": 1.0, "ess_tail_min": 1.0}
 

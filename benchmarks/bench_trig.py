@@ -1,5 +1,5 @@
 """Per-(row, frequency) cost of the random-feature passes: numpy cos/sin against the compiled
-float32 kernels of ``tasks/_trig.py``, side by side in one run.
+float32 kernels of ``tasks/thin/_trig.py``, side by side in one run.
 
 Run:  nice .venv/bin/python benchmarks/bench_trig.py [--rows 50000] [--repeats 3]
 
@@ -33,14 +33,14 @@ from concurrent.futures import ThreadPoolExecutor  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from winnow.tasks import _features  # noqa: E402
-from winnow.tasks._features import (  # noqa: E402
+from winnow.tasks.thin import _features as _features  # noqa: E402
+from winnow.tasks.thin._features import (
     draw_feature_map,
     features_of_rows,
     mean_embedding,
     one_blas_thread,
 )
-from winnow.tasks._kernels import get_kernel  # noqa: E402
+from winnow.tasks.thin._kernels import get_kernel  # noqa: E402
 
 D = 4096
 CHUNK = 512  # rows per chunk, as thin() picks for D = 4096 (16 MB of float32 features)

@@ -21,16 +21,10 @@ from pathlib import Path
 
 import numpy as np
 
-from winnow.tasks._uncertainty import ChainGeometry
 from winnow.tasks.collect import ReportData, build_report, estimate_qoi, export_csv
-from winnow.tasks.records import (
-    Attempt,
-    Diagnostics,
-    ParameterDiagnostics,
-    QoIValue,
-    RunOutcome,
-)
-from winnow.tasks.thinning import thin
+from winnow.tasks.collect._uncertainty import ChainGeometry
+from winnow.tasks.records import Attempt, Diagnostics, ParameterDiagnostics, QoIValue, RunOutcome
+from winnow.tasks.thin import thin
 
 PUMPING = 0.02  # m^3/s
 RADIUS = 150.0  # m, well to spring

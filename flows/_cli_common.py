@@ -71,11 +71,11 @@ PLAIN_VALIDATORS: frozenset[tuple[str, str]] = frozenset(
         ("winnow.tasks.stages", "preflight"),  # the study config against its files and data
         ("winnow.tasks.stages", "_check_creatable"),  # store / work_dir paths
         ("winnow.tasks.stages", "read_observations"),  # the observations CSV
-        ("winnow.tasks.thinning", "_prepare"),  # a chain without one finite row
-        ("winnow.tasks.thinning", "_run_one_thread"),  # --budget against the distinct rows
-        ("winnow.tasks._kernels", "get_kernel"),  # --kernel
-        ("winnow.tasks.diagnostics", "burn_in_count"),  # --burn-in
-        ("winnow.tasks.diagnostics", "chain_to_array"),  # --chains
+        ("winnow.tasks.thin", "_prepare"),  # a chain without one finite row
+        ("winnow.tasks.thin", "_run_one_thread"),  # --budget against the distinct rows
+        ("winnow.tasks.thin._kernels", "get_kernel"),  # --kernel
+        ("winnow.tasks.sample", "burn_in_count"),  # --burn-in
+        ("winnow.tasks.sample", "chain_to_array"),  # --chains
         ("winnow.tasks*store*", "resolve_revision"),  # -r REV
         ("winnow.tasks*store*", "trace"),  # winnow trace POINT
         ("winnow.tasks*store*", "_find_run"),  # winnow trace POINT
@@ -219,7 +219,7 @@ def note_progress(
 
 
 def _on_signal(signum: int, frame: Any) -> None:
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     if _process.stop_requested():  # the second signal: no more waiting
         _process.kill_all_now()
@@ -236,7 +236,7 @@ def _on_signal(signum: int, frame: Any) -> None:
 
 def _watchdog(signum: int) -> None:
     """Exit the process HARD_EXIT_AFTER seconds after the first signal, whatever still waits."""
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     time.sleep(HARD_EXIT_AFTER)
     _process.kill_all_now()
@@ -265,8 +265,8 @@ def _hard_exit(code: int) -> NoReturn:
 
 def _run_counts(specs: Sequence[Any], since: float) -> dict[str, int]:
     """How the dispatched runs stand, from their journals (the only record written so far)."""
-    from winnow.tasks import _process
-    from winnow.tasks._decks import OUTCOME_NAME
+    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch._decks import OUTCOME_NAME
 
     counts = {"stopped": 0, "kept": 0, "unsuccessful": 0, "not started": 0}
     for spec in specs:
@@ -293,7 +293,7 @@ def _plural(n: int, word: str) -> str:
 
 def _report(signum: int, *, second: bool = False) -> None:
     """Print once what the interrupt stopped and how to resume."""
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     with _LOCK:
         if _STATE.get("reported") or not _STATE:
@@ -331,7 +331,7 @@ def _report(signum: int, *, second: bool = False) -> None:
 
 def _signal_of(exc: BaseException) -> int | None:
     """The signal behind an exception that ends an interrupted command, or None."""
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     sig = _process.stop_signal()
     if sig is not None:
@@ -352,7 +352,7 @@ def interruptible(resume: str) -> Iterator[None]:
     ``resume`` is the command that resumes the study (printed in the report). The previous
     handlers are restored afterwards. Outside the main thread this does nothing.
     """
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     if threading.current_thread() is not threading.main_thread():
         yield
@@ -384,7 +384,7 @@ def interruptible(resume: str) -> Iterator[None]:
 
 def _finish_interrupted(signum: int) -> NoReturn:
     """The orderly end of an interrupted command: solvers gone, report, exit 128 + signum."""
-    from winnow.tasks import _process
+    from winnow.tasks.dispatch import _process as _process
 
     _process.request_stop(signum)  # also when the interrupt did not come through _on_signal
     _process.terminate_descendant_solvers()

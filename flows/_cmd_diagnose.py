@@ -1,6 +1,6 @@
 """``winnow diagnose``: convergence diagnostics of a chain file.
 
-Reads a ``.npy``, ``.csv`` or HDF5 chain (see :mod:`winnow.tasks.chainfiles`) and prints
+Reads a ``.npy``, ``.csv`` or HDF5 chain (see :mod:`winnow.tasks.sample`) and prints
 rank-normalised split R-hat, bulk and tail ESS and Monte Carlo standard errors per parameter,
 as a table or as JSON. Every draw is kept by default: a chain file written by another sampler
 has nearly always had its warm-up removed already, and dropping half of it would throw away
@@ -160,8 +160,7 @@ def register(app: typer.Typer) -> None:
         ] = None,
     ) -> None:
         """Print convergence diagnostics (R-hat, ESS, MCSE) of a chain file."""
-        from winnow.tasks.chainfiles import read_chain_file
-        from winnow.tasks.diagnostics import diagnose_chain
+        from winnow.tasks.sample import diagnose_chain, read_chain_file
 
         rule = _burn_in(burn_in)
         if chains is not None and chains < 1:

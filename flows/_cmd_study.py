@@ -142,7 +142,8 @@ def register(app: typer.Typer) -> None:
         # --force would start the study afresh, so the resume hint never repeats it
         with interruptible(f"winnow run {shlex.quote(str(config))}"):
             cfg, text = _load(config)
-            from winnow.tasks.stages import ConvergenceError, preflight
+            from winnow.tasks.preflight import preflight
+            from winnow.tasks.sample import ConvergenceError
 
             base = config.resolve().parent
             preflight(cfg, base)  # bad input is reported here, before anything is written
@@ -205,7 +206,7 @@ def register(app: typer.Typer) -> None:
     def validate(config: Annotated[Path, typer.Argument(help="Study config (YAML).")]) -> None:
         """Check a study config, its files, model and templates without running anything."""
         cfg, _ = _load(config)
-        from winnow.tasks.stages import preflight
+        from winnow.tasks.preflight import preflight
 
         preflight(cfg, config.resolve().parent)
         print(f"{config}: valid")
@@ -223,7 +224,7 @@ def register(app: typer.Typer) -> None:
     ) -> None:
         """Serve a study on a schedule; each run makes a new revision only when inputs changed."""
         cfg, _ = _load(config)
-        from winnow.tasks.stages import preflight
+        from winnow.tasks.preflight import preflight
 
         preflight(cfg, config.resolve().parent)
         _check_cron(cron)

@@ -2,7 +2,7 @@
 
 ``winnow thin CHAIN --budget M --out FILE`` reads ``.npy`` (n x d), ``.csv`` (header row of
 parameter names) or ``.h5``/``.hdf5`` (``--dataset PATH``), runs
-:func:`winnow.tasks.thinning.thin` and writes ``FILE.json`` or ``FILE.csv`` (chosen by the
+:func:`winnow.tasks.thin.thin` and writes ``FILE.json`` or ``FILE.csv`` (chosen by the
 suffix). Everything is validated before anything is written; an existing ``--out`` is kept
 unless ``--force``. Heavy modules (numpy, scipy, the thinning engine) are imported inside the
 command so that ``winnow --help`` stays fast.
@@ -135,8 +135,8 @@ def register(app: typer.Typer) -> None:
                 raise UsageError(
                     f"--features must be an integer or 'auto', got {features!r}"
                 ) from None
-        from winnow.tasks.chainfiles import read_chain_file
-        from winnow.tasks.thinning import thin
+        from winnow.tasks.sample import read_chain_file
+        from winnow.tasks.thin import thin
 
         data = read_chain_file(chain, dataset=dataset)
         options = dict(

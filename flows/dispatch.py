@@ -34,8 +34,6 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.logging import get_run_logger
 
-from winnow.tasks import _process
-from winnow.tasks._process import Interrupted, failed_outcome
 from winnow.tasks.dispatch import (
     DEFAULT_TAIL_BYTES,
     RunOptions,
@@ -43,6 +41,8 @@ from winnow.tasks.dispatch import (
     plan_dispatch,
     read_outcome,
 )
+from winnow.tasks.dispatch import _process as _process
+from winnow.tasks.dispatch._process import Interrupted, failed_outcome
 from winnow.tasks.records import RunOutcome, RunSpec
 
 __all__ = ["dispatch_flow", "make_task_runner", "run_point"]
@@ -63,7 +63,7 @@ def make_task_runner(config_value: Any, *, concurrency: int):
     """
     from prefect.task_runners import ThreadPoolTaskRunner
 
-    from winnow.tasks._runners import _validate_concurrency
+    from winnow.tasks.dispatch._runners import _validate_concurrency
 
     concurrency = _validate_concurrency(concurrency)
     if config_value is None or config_value == "local" or config_value == {"local": {}}:
@@ -105,9 +105,7 @@ def run_point(spec: RunSpec, options: RunOptions) -> Any:
     outcome = execute_run(spec, options)
     if outcome.state != "succeeded":
         # the outcome travels with the state: the run folder (and its journal) may be gone
-        return Failed(
-            message=f"run {spec.run_id} {outcome.state}: {outcome.message}", data=outcome
-        )
+        return Failed(message=f"run {spec.run_id} {outcome.state}: {outcome.message}", data=outcome)
     return outcome
 
 
@@ -176,7 +174,7 @@ def dispatch_flow(
         check_output=check_output,
         kill_grace=kill_grace,
     )
-    from winnow.tasks._runners import _validate_concurrency
+    from winnow.tasks.dispatch._runners import _validate_concurrency
 
     concurrency = _validate_concurrency(concurrency)
     task_runner = make_task_runner(runner, concurrency=concurrency)
@@ -333,7 +331,7 @@ def _bounded(
 ) -> Iterator[tuple[RunSpec, Any]]:
     """Submit the runs of ``todo`` with at most ``limit`` in flight; yield ``(spec, future)``
     as each finishes, submitting the next one first. No run is submitted once a stop was
-    requested (:func:`winnow.tasks._process.request_stop`).
+    requested (:func:`winnow.tasks.dispatch._process.request_stop`).
 
     The limit is kept here rather than left to the task runner: a Dask cluster would run one
     task per worker slot, whatever the study's ``concurrency`` says. ``in_flight`` (filled

@@ -5,7 +5,7 @@
 * by default it runs again, with the same decks, every run that did not succeed (failed,
   timed out, output missing, never finished), then collects again;
 * with ``replace=True`` it asks the thin stage for the best substitutes of the points whose
-  runs did not succeed, given the surviving points (:func:`winnow.tasks.thinning.replace`),
+  runs did not succeed, given the surviving points (:func:`winnow.tasks.thin.replace`),
   renders and runs only the substitutes, and collects with the re-solved weights. The
   replaced runs stay recorded in the store, with a message naming their substitute.
 
@@ -39,14 +39,14 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
 
     With ``extend=k`` (k > 0), first add ``k`` points to the selection, chosen by the thin
     stage to shrink the MMD most with every earlier point kept
-    (:func:`winnow.tasks.thinning.extend`), and run them; weights are re-solved over all
+    (:func:`winnow.tasks.thin.extend`), and run them; weights are re-solved over all
     points. The report's "more runs" forecast says what ``k`` buys.
     """
     from winnow.flows._cli_common import note_progress, reassert_interrupt_handlers
     from winnow.tasks.dispatch import select_for_rerun
     from winnow.tasks.store import RunStore
-    from winnow.tasks.thinning import extend as extend_points
-    from winnow.tasks.thinning import replace as replace_points
+    from winnow.tasks.thin import extend as extend_points
+    from winnow.tasks.thin import replace as replace_points
 
     if isinstance(extend, bool) or not isinstance(extend, int) or extend < 0:
         raise ValueError(f"extend: expected a whole number >= 0 of points to add, got {extend!r}")

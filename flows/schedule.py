@@ -6,7 +6,6 @@ absolute path as its parameter. Each scheduled run reads the file again, so new 
 text or an input file's content changed, and otherwise reports that the study is up to date.
 """
 
-
 from pathlib import Path
 
 from prefect import flow
@@ -25,7 +24,7 @@ __all__ = ["scheduled_study"]
 def scheduled_study(config_path: str) -> StudyResult:
     """Run the study of ``config_path`` as it is now (see :func:`study_flow`)."""
     from winnow.flows.blocks import load_study
-    from winnow.tasks.stages import preflight
+    from winnow.tasks.preflight import preflight
 
     path = Path(config_path).resolve()
     cfg, text = load_study(path)

@@ -25,15 +25,10 @@ from prefect.artifacts import (
 )
 from prefect.runtime import flow_run
 
-from winnow.tasks import stages
 from winnow.tasks.config import StudyConfig, config_hash, resolve
-from winnow.tasks.prefect_tasks import (
-    collect_task,
-    prepare_runs_task,
-    sample_task,
-    thin_stage_task,
-)
+from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task, sample_task, thin_stage_task
 from winnow.tasks.records import RunOutcome
+from winnow.tasks.sample import observation_columns, read_observations
 
 __all__ = [
     "StudyFailed",
@@ -165,8 +160,15 @@ def _estimate_summary(est) -> dict[str, Any]:
         out["headline"] = {
             k: f(h[k])
             for k in (
-                "level", "estimate", "interval_low", "interval_high", "chain_mean_low",
-                "chain_mean_high", "rule", "flags", "reliable",
+                "level",
+                "estimate",
+                "interval_low",
+                "interval_high",
+                "chain_mean_low",
+                "chain_mean_high",
+                "rule",
+                "flags",
+                "reliable",
             )
             if k in h
         }
@@ -378,9 +380,7 @@ def _observation_table(config: StudyConfig, base: Path) -> dict[str, Any] | None
     o = config.sample.observations
     if o is None:
         return None
-    return stages.read_observations(
-        resolve(base / "x", o.file), stages.observation_columns(o)
-    ).columns
+    return read_observations(resolve(base / "x", o.file), observation_columns(o)).columns
 
 
 def _choose_revision(store, config_text: str, inputs: dict[str, Path]) -> str | None:
@@ -409,7 +409,7 @@ def _dispatch(
 
     Runs journalled as succeeded in their folders (a killed study) and runs whose key
     succeeded in any store revision are not run again. An interrupt (Ctrl-C, SIGTERM) ends
-    it with :class:`~winnow.tasks._process.Interrupted` after the runs in flight were stopped
+    it with :class:`~winnow.tasks.dispatch._process.Interrupted` after the runs in flight were stopped
     and journalled, so the caller commits nothing of this dispatch.
     """
     from winnow.flows._cli_common import note_progress

@@ -4,9 +4,9 @@ Every core module here is importable without Prefect:
 
 * :mod:`winnow.tasks.config` -- the study config models and loader;
 * :mod:`winnow.tasks.records` -- the plain data objects the stages pass on;
-* :mod:`winnow.tasks.sampling`, :mod:`~winnow.tasks.diagnostics`,
-  :mod:`~winnow.tasks.chainfiles` -- the sample stage;
-* :mod:`winnow.tasks.thinning` -- the thin stage;
+* :mod:`winnow.tasks.sample`, :mod:`~winnow.tasks.sample`,
+  :mod:`~winnow.tasks.sample` -- the sample stage;
+* :mod:`winnow.tasks.thin` -- the thin stage;
 * :mod:`winnow.tasks.dispatch` -- the dispatch stage;
 * :mod:`winnow.tasks.collect` -- the collect stage and report;
 * :mod:`winnow.tasks.store` -- the HDF5 run store;
@@ -14,7 +14,7 @@ Every core module here is importable without Prefect:
 
 The Prefect task wrappers live in :mod:`winnow.tasks.prefect_tasks`; reading one of their
 names from this package imports that module (and Prefect) on first use, so
-``import winnow.tasks.thinning`` stays fast.
+``import winnow.tasks.thin`` stays fast.
 """
 
 from __future__ import annotations

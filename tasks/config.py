@@ -10,13 +10,15 @@ names the file, the field path and what was expected.
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import hashlib
 import math
 import os
 import re
 import shlex
-from collections.abc import Callable, Sequence
+import sys
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path, PurePosixPath
 from typing import Annotated, Any, Literal, get_args
 
@@ -33,7 +35,7 @@ from pydantic import (
     model_validator,
 )
 
-from winnow.tasks.errors import InputError
+from .errors import InputError
 
 __all__ = [
     "CheckSettings",
@@ -689,7 +691,7 @@ class QoISettings(_Model):
     def _reader_options(self) -> QoISettings:
         # The collect stage's own validation knows every reader's options; a pure check
         # (nothing is read or imported except a 'function' reader's module).
-        from .collect import validate_qoi_spec
+        from winnow.tasks.collect import validate_qoi_spec
 
         if "function" in self.reader:
             # importing the user's function waits for preflight, which knows the search path
@@ -992,3 +994,22 @@ def resolve(config_path: str | Path, relative: str) -> Path:
     """A path from a config, resolved against the config file's folder."""
     p = Path(relative).expanduser()
     return p if p.is_absolute() else (Path(config_path).resolve().parent / p)
+
+
+@contextlib.contextmanager
+def importable(folder: Path) -> Iterator[None]:
+    """Put ``folder`` first on the import path for the duration (user reader functions)."""
+    added = str(folder) not in sys.path
+    if added:
+        sys.path.insert(0, str(folder))
+    try:
+        yield
+    finally:
+        if added:
+            sys.path.remove(str(folder))
+
+
+def model_search_path(config: StudyConfig, base_dir: Path) -> Path:
+    """The folder the cheap model and user reader modules are imported from."""
+    m = config.sample.model
+    return resolve(base_dir / "x", m.search_path) if m is not None else Path(base_dir)

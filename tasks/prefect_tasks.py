@@ -23,7 +23,11 @@ import numpy as np
 import numpy.typing as npt
 from prefect import task
 
-from . import stages
+from winnow.tasks.collect import collect_stage
+from winnow.tasks.dispatch import prepare_runs, render_selection
+from winnow.tasks.sample import sample_stage
+from winnow.tasks.thin import thin_stage
+
 from .config import StudyConfig
 from .records import Chain, RunSpec, Selection
 
@@ -39,8 +43,8 @@ __all__ = [
 
 @task(name="thin", task_run_name="thin-{budget}-points", retries=0)
 def thin_task(samples: npt.ArrayLike | Chain, budget: int, **options: Any) -> Selection:
-    """Choose ``budget`` weighted points of ``samples`` by MMD (see :func:`winnow.tasks.thinning.thin`)."""
-    from .thinning import thin
+    """Choose ``budget`` weighted points of ``samples`` by MMD (see :func:`winnow.tasks.thin.thin`)."""
+    from winnow.tasks.thin import thin
 
     data = samples.samples if isinstance(samples, Chain) else np.asarray(samples)
     return thin(data, budget, **options)
@@ -49,16 +53,16 @@ def thin_task(samples: npt.ArrayLike | Chain, budget: int, **options: Any) -> Se
 # Task run names show the study and revision: "sample-aquifer-demo-r0002".
 @task(name="sample", task_run_name="sample-{config.study.name}-{revision}")
 def sample_task(config: StudyConfig, base_dir: Path, *, revision: str = "", **kwargs: Any) -> Chain:
-    """Calibrate the study's cheap model or import its chain (see :func:`stages.sample_stage`)."""
-    return stages.sample_stage(config, Path(base_dir), **kwargs)
+    """Calibrate the study's cheap model or import its chain (see :func:`sample_stage`)."""
+    return sample_stage(config, Path(base_dir), **kwargs)
 
 
 @task(name="thin-stage", task_run_name="thin-{config.study.name}-{revision}")
 def thin_stage_task(
     config: StudyConfig, chain: Chain, *, revision: str = "", **kwargs: Any
 ) -> Selection:
-    """Thin a study's chain with the study's settings (see :func:`stages.thin_stage`)."""
-    return stages.thin_stage(config, chain, **kwargs)
+    """Thin a study's chain with the study's settings (see :func:`thin_stage`)."""
+    return thin_stage(config, chain, **kwargs)
 
 
 @task(name="render-decks", task_run_name="render-decks-{config.study.name}-{revision}")
@@ -71,8 +75,8 @@ def prepare_runs_task(
     revision: str = "",
     **kwargs: Any,
 ) -> list[RunSpec]:
-    """Render one run folder per chosen point (see :func:`stages.prepare_runs`)."""
-    return stages.prepare_runs(config, Path(base_dir), chain, selection, **kwargs)
+    """Render one run folder per chosen point (see :func:`prepare_runs`)."""
+    return prepare_runs(config, Path(base_dir), chain, selection, **kwargs)
 
 
 @task(name="collect", task_run_name="collect-{config.study.name}-{revision}")
@@ -87,8 +91,8 @@ def collect_task(
     revision: str = "",
     **kwargs: Any,
 ) -> tuple[list[Any], list[Any]]:
-    """Read the QoIs and make the weighted estimates (see :func:`stages.collect_stage`)."""
-    return stages.collect_stage(config, Path(base_dir), chain, selection, specs, outcomes, **kwargs)
+    """Read the QoIs and make the weighted estimates (see :func:`collect_stage`)."""
+    return collect_stage(config, Path(base_dir), chain, selection, specs, outcomes, **kwargs)
 
 
 @task(name="render-runs", task_run_name="render-{run_root}")
@@ -106,14 +110,14 @@ def render_runs_task(
     Parameters
     ----------
     selection : Selection
-        From :func:`thin_task` (or :func:`winnow.tasks.thinning.thin`).
+        From :func:`thin_task` (or :func:`winnow.tasks.thin.thin`).
     names : list of str
         Parameter names, in the order of the selection's columns (the template variables).
     run_root, decks, command, template_root
         As for :func:`winnow.tasks.dispatch.render_run`; ``decks`` is a
         :class:`~winnow.tasks.dispatch.DeckSpec` and ``command`` may use ``{python}``.
     """
-    return stages.render_selection(
+    return render_selection(
         selection,
         names,
         run_root=Path(run_root),

@@ -9,6 +9,7 @@ All arrays are ``numpy.ndarray``; parameter values are always in the user's unit
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -16,6 +17,7 @@ from typing import Any, Literal
 import numpy as np
 
 __all__ = [
+    "Progress",
     "RUN_STATES",
     "Attempt",
     "Chain",
@@ -28,6 +30,9 @@ __all__ = [
     "RunState",
     "Selection",
 ]
+
+#: ``progress(done, total, step)``: a stage reports its long steps through this callback.
+Progress = Callable[[int, int, str], None]
 
 
 # --------------------------------------------------------------------------------------------

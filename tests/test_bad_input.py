@@ -398,8 +398,7 @@ def test_dotdot_staging_path_names_its_field_and_index(tmp_path, field):
 def test_config_dir_placeholder_and_staged_copy_both_run(tmp_path):
     # The two fixes the message offers both validate and then run in the run folder.
     from winnow.tasks.config import load_config
-    from winnow.tasks.dispatch import render_run, run_one
-    from winnow.tasks.stages import deck_spec, solver_command
+    from winnow.tasks.dispatch import deck_spec, render_run, run_one, solver_command
 
     cases = {
         "beside": {"command": ["{python}", "{config_dir}/solver.py", "{deck}"]},

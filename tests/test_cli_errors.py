@@ -35,7 +35,7 @@ def _invoke(*args):
 
 def _winnow_bug(*args, **kwargs):
     """Fail inside winnow's own (non-validating) code, as a bug there would."""
-    from winnow.tasks._process import outcome_from_dict
+    from winnow.tasks.dispatch._process import outcome_from_dict
 
     return outcome_from_dict({"format": "not-an-outcome"})  # ValueError in winnow code
 
@@ -68,9 +68,9 @@ def temp_dir(tmp_path, monkeypatch) -> Path:
     ids=["ValueError in winnow", "TypeError in numpy"],
 )
 def test_bug_in_the_thin_stage_is_an_internal_error(tmp_path, temp_dir, monkeypatch, bug, summary):
-    import winnow.tasks.thinning
+    import winnow.tasks.thin
 
-    monkeypatch.setattr(winnow.tasks.thinning, "thin", bug)
+    monkeypatch.setattr(winnow.tasks.thin, "thin", bug)
     np.save(tmp_path / "c.npy", np.random.default_rng(4).normal(size=(50, 2)))
     out = tmp_path / "sel.json"
     res = _invoke("thin", tmp_path / "c.npy", "--budget", "3", "--out", out, "--quiet")
@@ -89,9 +89,9 @@ def test_bug_in_the_thin_stage_is_an_internal_error(tmp_path, temp_dir, monkeypa
 def test_bug_deep_in_a_study_stage_is_an_internal_error(
     tmp_path, temp_dir, monkeypatch, prefect_harness
 ):
-    import winnow.tasks.stages
+    import winnow.tasks.prefect_tasks
 
-    monkeypatch.setattr(winnow.tasks.stages, "thin_stage", _winnow_bug)
+    monkeypatch.setattr(winnow.tasks.prefect_tasks, "thin_stage", _winnow_bug)
     cfg = make_study(tmp_path / "study")
     res = _invoke("run", cfg)
     assert res.exit_code == 1, (res.exit_code, res.output)
@@ -148,9 +148,9 @@ def test_usage_errors_are_told_apart_by_type_and_raise_site():
     assert not is_usage_error(type("StoreFormatError", (ValueError,), {})("elsewhere"))
     assert is_usage_error(FileNotFoundError("chain.npy"))
     # a plain ValueError is bad input only when one of winnow's validators raised it
-    assert is_usage_error(_raise_in("winnow.tasks.thinning", "_validate_int", ValueError("v")))
+    assert is_usage_error(_raise_in("winnow.tasks.thin", "_validate_int", ValueError("v")))
     assert is_usage_error(_raise_in("winnow.tasks.stages", "preflight", ValueError("v")))
-    assert not is_usage_error(_raise_in("winnow.tasks.thinning", "greedy", ValueError("v")))
+    assert not is_usage_error(_raise_in("winnow.tasks.thin", "greedy", ValueError("v")))
     assert not is_usage_error(_raise_in("winnow.tasks.stages", "preflight", KeyError("v")))
     assert not is_usage_error(_raise_in("numpy", "_validate_int", ValueError("v")))
     assert is_usage_error(_raise_in("winnow.tasks._store_x", "resolve_revision", ValueError("v")))

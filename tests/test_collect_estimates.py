@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks._uncertainty import ChainGeometry
 from winnow.tasks.collect import (
     bootstrap_mean_se,
     chain_ess,
@@ -14,6 +13,7 @@ from winnow.tasks.collect import (
     weighted_mean_sd,
     weighted_quantile,
 )
+from winnow.tasks.collect._uncertainty import ChainGeometry
 from winnow.tasks.records import QoIValue
 
 

@@ -1,4 +1,4 @@
-"""The error model of the collect stage (tasks/_uncertainty.py, tasks/_headline.py).
+"""The error model of the collect stage (tasks/collect/_uncertainty.py, tasks/collect/_headline.py).
 
 Outside references: closed-form Gaussian integrals of the Gaussian kernel (the product of two
 Gaussian densities integrates in closed form; Briol et al. 2019, Table 1), a direct Gram-matrix
@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from winnow.tasks._estimates import estimate_qoi
-from winnow.tasks._uncertainty import (
+from winnow.tasks.collect._estimates import estimate_qoi
+from winnow.tasks.collect._uncertainty import (
     ERROR_KERNELS,
     ChainGeometry,
     _reml_fit,
@@ -116,8 +116,12 @@ def test_regression_rule_variance_matches_monte_carlo():
     # the GLS operator of the fit at fixed hyperparameters: fit a single grid point
     X = np.column_stack([np.ones(20), c[idx]])
     fit = _reml_fit(
-        np.zeros(20) + rng.normal(size=20), X, ERROR_KERNELS["matern52"], z[idx],
-        np.array([length]), np.array([eta]),
+        np.zeros(20) + rng.normal(size=20),
+        X,
+        ERROR_KERNELS["matern52"],
+        z[idx],
+        np.array([length]),
+        np.array([eta]),
     )
     a = fit.A[1]
     smooth = _gp_paths(z, length, sigma, 0.0, 6000, rng)
@@ -164,9 +168,7 @@ def test_one_weighted_point_is_not_estimable():
     fit = fit_error_model(chain[:3], [1.0, 2.0, 3.0], [1.0, 0.0, 0.0], geo)
     assert np.isnan(fit.se) and "not estimable" in fit.flags[0]
     assert all(np.isnan(fit.interval()))
-    est = estimate_qoi(
-        [1.0, 2.0, 3.0], [1.0, 0.0, 0.0], name="q", points=chain[:3], geometry=geo
-    )
+    est = estimate_qoi([1.0, 2.0, 3.0], [1.0, 0.0, 0.0], name="q", points=chain[:3], geometry=geo)
     assert np.isnan(float(est.uncertainty["thinning_se"]))
     assert est.headline["reliable"] is False
 
@@ -198,7 +200,11 @@ def test_poor_cheap_model_keeps_the_plain_mean():
     costly = np.cos(chain[idx, 1])
     cheap_chain = rng.normal(size=3000)  # noise: no relation at all
     fit = fit_error_model(
-        chain[idx], costly, w, geo, cheap_points=cheap_chain[idx],
+        chain[idx],
+        costly,
+        w,
+        geo,
+        cheap_points=cheap_chain[idx],
         cheap_chain_mean=float(cheap_chain.mean()),
     )
     assert fit.rule == "weighted mean"
@@ -212,8 +218,13 @@ def test_nonfinite_cheap_rows_are_dropped_and_counted():
     c[17] = np.nan
     idx = rng.choice(np.delete(np.arange(2000), 17), 12, replace=False)
     est = estimate_qoi(
-        c[idx] + 0.05, np.full(12, 1 / 12), name="q", cheap_on_points=c[idx],
-        cheap_on_chain=c, points=chain[idx], geometry=ChainGeometry(chain, rng=0),
+        c[idx] + 0.05,
+        np.full(12, 1 / 12),
+        name="q",
+        cheap_on_points=c[idx],
+        cheap_on_chain=c,
+        points=chain[idx],
+        geometry=ChainGeometry(chain, rng=0),
         forecast=False,
     )
     assert est.details["cheap_nonfinite_chain_rows"] == 1
@@ -253,7 +264,7 @@ def test_bad_kernel_names_the_choices():
 def test_probability_interval_is_wilson_at_the_effective_size():
     # Oracle: scipy.stats.binomtest(...).proportion_ci(method="wilson") (Wilson 1927); equal
     # weights on 10 points are 10 effective draws, no chain error.
-    from winnow.tasks._headline import probability_interval
+    from winnow.tasks.collect._headline import probability_interval
 
     ind = np.array([1, 0, 0, 1, 0, 0, 0, 1, 0, 0], dtype=float)
     got = probability_interval(ind, np.full(10, 0.1), ess_points=10.0, chain_ess=None)
@@ -268,8 +279,8 @@ def test_probability_interval_is_wilson_at_the_effective_size():
 def test_quantile_interval_inverts_the_cdf_interval():
     # Woodruff (1952): the q-quantile interval is [Q(q - h_lo), Q(q + h_hi)] with Q the
     # weighted quantile function; an end outside the plotting positions is unbounded.
-    from winnow.tasks._estimates import weighted_quantile
-    from winnow.tasks._headline import quantile_interval
+    from winnow.tasks.collect._estimates import weighted_quantile
+    from winnow.tasks.collect._headline import quantile_interval
 
     y = np.arange(20, dtype=float)
     w = np.full(20, 0.05)
@@ -282,7 +293,7 @@ def test_quantile_interval_inverts_the_cdf_interval():
 
 
 def test_margin_values():
-    from winnow.tasks._uncertainty import margin
+    from winnow.tasks.collect._uncertainty import margin
 
     assert margin(9) == pytest.approx(np.exp(-2 / 3))
     assert margin(9) < margin(29) < margin(99) < 1.0
@@ -302,8 +313,13 @@ def test_clustered_failures_flag_the_estimate():
     clustered = vals.copy()
     clustered[top] = np.nan
     est = estimate_qoi(
-        clustered, np.full(30, 1 / 30), name="q", points=chain[idx], geometry=geo,
-        forecast=False, rng=1,
+        clustered,
+        np.full(30, 1 / 30),
+        name="q",
+        points=chain[idx],
+        geometry=geo,
+        forecast=False,
+        rng=1,
     )
     assert not est.headline["reliable"]
     assert any("cluster in one region" in f for f in est.headline["flags"])
@@ -313,8 +329,14 @@ def test_clustered_failures_flag_the_estimate():
         rand = vals.copy()
         rand[g.choice(30, 6, replace=False)] = np.nan
         e = estimate_qoi(
-            rand, np.full(30, 1 / 30), name="q", points=chain[idx], geometry=geo,
-            forecast=False, rng=k, quantiles=(),
+            rand,
+            np.full(30, 1 / 30),
+            name="q",
+            points=chain[idx],
+            geometry=geo,
+            forecast=False,
+            rng=k,
+            quantiles=(),
         )
         flagged += any("cluster in one region" in f for f in e.headline["flags"])
     assert stats.binom.sf(3, 40, 0.01) < 0.001
@@ -322,7 +344,7 @@ def test_clustered_failures_flag_the_estimate():
 
 
 def test_forecast_starts_at_the_stated_error():
-    from winnow.tasks._headline import forecast
+    from winnow.tasks.collect._headline import forecast
 
     rng = np.random.default_rng(10)
     chain = rng.normal(size=(3000, 2))

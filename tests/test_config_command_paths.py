@@ -1,6 +1,6 @@
 """Config checks of the solver command's files and of the staging lists (tasks/config.py).
 
-The solver runs with its run folder as working folder (tasks/_process.py, ``cwd=run_dir``);
+The solver runs with its run folder as working folder (tasks/dispatch/_process.py, ``cwd=run_dir``);
 Python's subprocess documentation ("Popen constructor", ``cwd``) states that a relative
 program path, and a relative file handed to it (``python solver.py``), is then taken
 relative to that folder. So a relative file named in ``dispatch.command`` must be one the

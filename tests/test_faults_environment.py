@@ -81,8 +81,8 @@ def test_work_dir_under_a_file_is_refused_before_anything_is_written(tmp_path):
 def test_disk_full_during_the_runs_commit_leaves_store_intact(
     tmp_path, prefect_harness, monkeypatch
 ):
-    from winnow.tasks import _store
     from winnow.tasks.store import RunStoreWriter
+    from winnow.tasks.store import _core as _store
 
     cfg = make_study(tmp_path)
     store = tmp_path / "study.h5"

@@ -58,8 +58,9 @@ def _alive(pid: int) -> bool:
 def mixed(tmp_path_factory, prefect_harness):
     import yaml
 
-    from winnow.tasks import stages
     from winnow.tasks.config import parse_config
+    from winnow.tasks.sample import sample_stage
+    from winnow.tasks.thin import thin_stage
 
     folder = tmp_path_factory.mktemp("mixed")
     cfg = make_study(
@@ -72,7 +73,7 @@ def mixed(tmp_path_factory, prefect_harness):
     )
     # the stages are deterministic: give each chosen point its behaviour up front
     config = parse_config(yaml.safe_load(cfg.read_text()))
-    sel = stages.thin_stage(config, stages.sample_stage(config, folder))
+    sel = thin_stage(config, sample_stage(config, folder))
     by_x = {repr(float(p[0])): m for p, m in zip(sel.points, MODES, strict=True)}
     (folder / "state" / "modes.json").write_text(json.dumps(by_x))
     result = run_study(cfg)

@@ -193,7 +193,7 @@ def test_registered_under_prefect_collections():
 
 def test_core_modules_do_not_import_prefect():
     code = (
-        "import sys, winnow.tasks.thinning, winnow.tasks.sampling, winnow.tasks.dispatch, "
+        "import sys, winnow.tasks.thin, winnow.tasks.sample, winnow.tasks.dispatch, "
         "winnow.tasks.collect, winnow.tasks.store, winnow.tasks.config, winnow.tasks.stages; "
         "print(sorted(m for m in sys.modules if m.split('.')[0] == 'prefect'))"
     )
@@ -391,9 +391,8 @@ def test_dispatch_flow_on_a_dask_cluster_address(prefect_harness, tmp_path):
     from distributed import LocalCluster
 
     from winnow.flows.dispatch import dispatch_flow
-    from winnow.tasks.dispatch import DeckSpec
-    from winnow.tasks.stages import render_selection
-    from winnow.tasks.thinning import thin
+    from winnow.tasks.dispatch import DeckSpec, render_selection
+    from winnow.tasks.thin import thin
 
     rng = np.random.default_rng(5)
     draws = rng.normal([1.0, 0.5], [0.1, 0.05], size=(2000, 2))

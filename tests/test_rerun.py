@@ -64,7 +64,7 @@ def test_rerun_runs_only_what_failed(prefect_harness, tmp_path):
 
 def test_rerun_replace_swaps_failed_points_for_substitutes(prefect_harness, tmp_path):
     from winnow.flows.rerun import rerun_flow
-    from winnow.tasks.thinning import reweight
+    from winnow.tasks.thin import reweight
 
     folder = tmp_path / "study"
     _first_run(folder, budget=9)
@@ -107,7 +107,7 @@ def test_rerun_extend_adds_points_and_runs_only_them(prefect_harness, tmp_path):
     # earlier points kept first; only the new points (and any failed run) run; the weights
     # are re-solved over all points (checked against the thin stage's reweight).
     from winnow.flows.rerun import rerun_flow
-    from winnow.tasks.thinning import reweight
+    from winnow.tasks.thin import reweight
 
     folder = tmp_path / "study"
     _first_run(folder, budget=6)

@@ -1,4 +1,4 @@
-"""Adaptive Metropolis adaptation (tasks/_samplers.py): the pooled covariance against an
+"""Adaptive Metropolis adaptation (tasks/sample/_samplers.py): the pooled covariance against an
 independent numpy oracle, the window schedule, and recovery of a badly scaled, strongly
 correlated 10-D Gaussian.
 
@@ -15,8 +15,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks._samplers import AdaptiveMetropolis, StepContext
-from winnow.tasks.sampling import sample
+from winnow.tasks.sample import sample
+from winnow.tasks.sample._samplers import AdaptiveMetropolis, StepContext
 
 D = 10
 SCALE = 10.0 ** np.linspace(-1, 1, D)

@@ -1,4 +1,4 @@
-"""Chain import from .npy, .csv and HDF5 files (tasks/chainfiles.py).
+"""Chain import from .npy, .csv and HDF5 files (tasks/sample/_chainfiles.py).
 
 Round trips are checked against numpy's own writers/readers (``numpy.save``/``numpy.load``,
 ``h5py``) as the outside reference; error cases check that the message names the file and
@@ -11,12 +11,7 @@ import h5py
 import numpy as np
 import pytest
 
-from winnow.tasks.chainfiles import (
-    nonfinite_rows,
-    read_chain_file,
-    write_chain_csv,
-    write_chain_npy,
-)
+from winnow.tasks.sample import nonfinite_rows, read_chain_file, write_chain_csv, write_chain_npy
 
 
 @pytest.fixture

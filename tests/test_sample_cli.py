@@ -1,6 +1,6 @@
-"""``winnow diagnose`` (flows/_cmd_diagnose.py) and the trace/pair plots (tasks/_plots.py).
+"""``winnow diagnose`` (flows/_cmd_diagnose.py) and the trace/pair plots (tasks/sample/_trace_plots.py).
 
-The numbers printed are those of tasks/diagnostics.py, which test_sample_diagnostics.py
+The numbers printed are those of tasks/sample/_diagnostics.py, which test_sample_diagnostics.py
 checks against arviz; here the command is checked against the library call on the same file,
 and on arviz's example posterior ``centered_eight`` (shipped inside the arviz package) against
 ``arviz.rhat(method="rank")`` and ``arviz.ess(method="bulk"/"tail")`` directly.
@@ -18,9 +18,8 @@ import pytest
 from typer.testing import CliRunner
 
 from winnow.flows.cli import app
-from winnow.tasks import diagnostics as D
-from winnow.tasks.chainfiles import read_chain_file
-from winnow.tasks.sampling import plot_trace_pairs
+from winnow.tasks import sample as D
+from winnow.tasks.sample import plot_trace_pairs, read_chain_file
 
 runner = CliRunner()
 

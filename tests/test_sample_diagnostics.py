@@ -1,4 +1,4 @@
-"""Convergence diagnostics (tasks/diagnostics.py).
+"""Convergence diagnostics (tasks/sample/_diagnostics.py).
 
 Outside references:
 * arviz 0.23 (general-purpose reference library): ``arviz.rhat(..., method="rank")``,
@@ -23,7 +23,7 @@ import warnings
 import numpy as np
 import pytest
 
-from winnow.tasks import diagnostics as D
+from winnow.tasks import sample as D
 from winnow.tasks.records import Chain
 
 with warnings.catch_warnings():

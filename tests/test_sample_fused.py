@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from winnow.tasks import _priors
-from winnow.tasks._priors import as_prior_set
-from winnow.tasks.sampling import build_log_posterior, sample
+from winnow.tasks.sample import _priors as _priors
+from winnow.tasks.sample import build_log_posterior, sample
+from winnow.tasks.sample._priors import as_prior_set
 
 SPECS = [
     ({"name": "u", "dist": "uniform", "low": -5, "high": -1}, stats.uniform(-5, 4)),
@@ -281,7 +281,7 @@ def test_scalar_log_density_of_floats_and_one_element_arrays():
 def test_de_proposal_against_its_formula(small, max_pairs, monkeypatch):
     # ter Braak (2006): y = x + gamma (x_r1 - x_r2) + e, e ~ N(0, (1e-4 sd of the others)^2)
     # per coordinate; the oracle redraws the same numbers and uses numpy's std.
-    from winnow.tasks._samplers import DifferentialEvolution, StepContext
+    from winnow.tasks.sample._samplers import DifferentialEvolution, StepContext
 
     monkeypatch.setattr(DifferentialEvolution, "max_pair_matrix", max_pairs)
     monkeypatch.setattr(DifferentialEvolution, "small_batch", small)
@@ -399,7 +399,7 @@ def test_row_by_row_model_posterior_and_resume(sampler):
 def test_stretch_proposal_against_its_formula(small, monkeypatch):
     # Goodman & Weare (2010), Eqs. (7), (9): y = x_j + z (x_k - x_j), log q ratio
     # (d - 1) log z, z = ((a - 1) U + 1)^2 / a; the oracle redraws the same numbers.
-    from winnow.tasks._samplers import StepContext, StretchMove
+    from winnow.tasks.sample._samplers import StepContext, StretchMove
 
     monkeypatch.setattr(StretchMove, "small_batch", small)
     d, m, r, n = 3, 4, 4, 5
@@ -422,7 +422,7 @@ def test_stretch_proposal_against_its_formula(small, monkeypatch):
 @pytest.mark.parametrize("name", list(N_CHAINS))
 def test_moves_declared_symmetric_return_a_zero_log_ratio(name):
     # The driver takes a zero ratio from a move declared symmetric without reading it.
-    from winnow.tasks._samplers import MOVES, StepContext
+    from winnow.tasks.sample._samplers import MOVES, StepContext
 
     move = MOVES[name](2, 8, np.ones(2))
     x = np.random.default_rng(3).normal(size=(4, 2))

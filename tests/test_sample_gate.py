@@ -1,7 +1,7 @@
 """The convergence gate of the sample stage (``sample.checks``, tasks/stages.py).
 
 A chain that fails a threshold stops the study before thinning (``on_failure: stop``, the
-default) with a :class:`~winnow.tasks.stages.ConvergenceError` naming the parameter, the
+default) with a :class:`~winnow.tasks.sample.ConvergenceError` naming the parameter, the
 measured value and the threshold; with ``on_failure: warn`` the study goes on and the failure
 is recorded in the chain's diagnostics (``Chain.diagnostics.messages``, stored with the chain
 and shown by the report); a chain that passes goes on silently.
@@ -23,7 +23,7 @@ same chain without the shift (converged), and tiny sampler runs.
 Outside references:
 * arviz (general-purpose reference library): ``az.rhat(method="rank")`` and
   ``az.ess(method="bulk")`` (Vehtari et al. 2021, Bayesian Analysis 16(2), the definitions
-  tasks/diagnostics.py implements) give the values the messages must quote, to the digits
+  tasks/sample/_diagnostics.py implements) give the values the messages must quote, to the digits
   printed.
 * closed form: an ESS estimate with Geyer's truncation and the antithetic cap of Vehtari et
   al. (2021, Sec. 3.2; arviz does the same) is at most ``N log10 N`` for ``N`` draws, so a
@@ -44,9 +44,9 @@ import pytest
 from fault_solvers.kit import calls, make_study
 from typer.testing import CliRunner
 
-from winnow.tasks import diagnostics as D
+from winnow.tasks import sample as D
 from winnow.tasks.config import load_config
-from winnow.tasks.stages import ConvergenceError, sample_stage
+from winnow.tasks.sample import ConvergenceError, sample_stage
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # arviz prints a FutureWarning about its refactor

@@ -10,7 +10,7 @@ Outside references:
   tuning steps; shipped inside the arviz package, loaded offline): the imported chain.
 * arviz (general-purpose reference library): ``az.rhat(method="rank")`` and
   ``az.ess(method="bulk")`` on the draws the stage should have kept (Vehtari et al. 2021);
-  the same formulas as tasks/diagnostics.py summed in another order, so relative 1e-9.
+  the same formulas as tasks/sample/_diagnostics.py summed in another order, so relative 1e-9.
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import pytest
 from fault_solvers.kit import make_study
 
 from winnow.tasks.config import SampleSettings, config_schema, load_config
-from winnow.tasks.stages import sample_stage
+from winnow.tasks.sample import sample_stage
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # arviz prints a FutureWarning about its refactor

@@ -1,4 +1,4 @@
-"""Log posterior of a user's model (tasks/_posterior.py via tasks/sampling.py).
+"""Log posterior of a user's model (tasks/sample/_posterior.py via tasks/sample/_sampling.py).
 
 Outside references: scipy.stats ``norm.logpdf`` and ``t.logpdf`` (general-purpose reference
 library) for the Gaussian and Student t likelihoods; the prior terms against scipy.stats too.
@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from winnow.tasks.sampling import build_log_posterior, load_callable, sample
+from winnow.tasks.sample import build_log_posterior, load_callable, sample
 
 T_OBS = np.array([1.0, 2.0, 4.0, 8.0])
 Y_OBS = np.array([2.1, 2.9, 5.2, 8.8])

@@ -1,4 +1,4 @@
-"""Priors and their transforms to an unconstrained space (tasks/_priors.py).
+"""Priors and their transforms to an unconstrained space (tasks/sample/_priors.py).
 
 Outside references:
 * scipy.stats (general-purpose reference library): ``uniform``, ``norm``, ``lognorm``,
@@ -16,8 +16,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from winnow.tasks._priors import Prior, PriorSet, as_prior_set
-from winnow.tasks.sampling import sample
+from winnow.tasks.sample import sample
+from winnow.tasks.sample._priors import Prior, PriorSet, as_prior_set
 
 SPECS = [
     ({"name": "u", "dist": "uniform", "low": -5, "high": -1}, stats.uniform(-5, 4)),

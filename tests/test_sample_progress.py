@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks._samplers import ProgressHook
-from winnow.tasks.sampling import sample
+from winnow.tasks.sample import sample
+from winnow.tasks.sample._samplers import ProgressHook
 
 PRIORS = [{"name": "a", "dist": "normal", "mu": 0.0, "sigma": 1.0},
           {"name": "b", "dist": "normal", "mu": 0.0, "sigma": 1.0}]  # fmt: skip

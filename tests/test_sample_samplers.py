@@ -1,4 +1,4 @@
-"""Samplers (tasks/_samplers.py, tasks/sampling.py): one shared contract for every move,
+"""Samplers (tasks/sample/_samplers.py, tasks/sample/_sampling.py): one shared contract for every move,
 and posterior moments against closed forms.
 
 Outside references:
@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks.sampling import SAMPLERS, build_log_posterior, sample
+from winnow.tasks.sample import SAMPLERS, build_log_posterior, sample
 
 MU = np.array([1.0, -2.0])
 SD = np.array([1.0, 2.0])

@@ -151,7 +151,6 @@ def test_served_study_run_completes(served):
         assert fr.state.is_completed(), (fr.state, log.read_text()[-4000:])
 
 
-
 def test_served_deployment_allows_one_run_at_a_time(served):
     """Overlapping scheduled runs queue instead of failing on the store lock (item 2)."""
     dep, api, _ = served

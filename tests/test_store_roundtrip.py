@@ -30,13 +30,7 @@ from winnow.tasks.records import (
     RunSpec,
     Selection,
 )
-from winnow.tasks.store import (
-    RunStore,
-    check,
-    hash_config,
-    hash_file,
-    inputs_changed,
-)
+from winnow.tasks.store import RunStore, check, hash_config, hash_file, inputs_changed
 
 
 # ------------------------------------------------------------------------------------------
@@ -543,7 +537,7 @@ def test_nul_in_output_tail_is_replaced_elsewhere_refused(store: Path) -> None:
 
 
 def test_hash_object_is_order_free_and_type_tagged() -> None:
-    from winnow.tasks._provenance import hash_object
+    from winnow.tasks.store._hashes import hash_object
 
     assert hash_object({"a": 1, "b": 2}) == hash_object({"b": 2, "a": 1})
     assert hash_object(np.float64(0.5)) == hash_object(0.5)  # HDF5 attrs come back as numpy
@@ -579,8 +573,8 @@ def test_rewriting_a_section_reuses_freed_space(store: Path) -> None:
 def test_fields_added_to_records_later_round_trip(store: Path, monkeypatch) -> None:
     # records.py lets stages add fields with defaults; the store keeps unknown fields in its
     # extra_json column/attribute. Simulate such a field on QoIValue and Chain.
-    from winnow.tasks import _store_tables as tables
     from winnow.tasks import records
+    from winnow.tasks.store import _tables as tables
 
     @dataclasses.dataclass(frozen=True)
     class QoIValue(records.QoIValue):
@@ -640,8 +634,8 @@ def _retype(obj: Any, target: str, sub: type) -> Any:
 def test_every_record_field_is_stored_by_a_column_or_kept_as_extra() -> None:
     # The column tables are the one statement of what is stored: every field they name must
     # be a field of the record, restored by one column at most (else reading is ambiguous).
-    from winnow.tasks import _store_tables as tables
     from winnow.tasks import records
+    from winnow.tasks.store import _tables as tables
 
     assert set(tables.TABLES) == set(STORED_RECORDS)
     for name, table in tables.TABLES.items():
@@ -669,8 +663,8 @@ def test_a_field_added_to_any_record_survives_the_round_trip(
     # records.py lets stages add fields with defaults. Whatever record gains one, with a
     # non-default value, reads back equal: its table either stores it or sends it to
     # extra_json. Records nested in others (Attempt, ParameterDiagnostics, Diagnostics) too.
-    from winnow.tasks import _store_tables as tables
     from winnow.tasks import records
+    from winnow.tasks.store import _tables as tables
 
     base = getattr(records, target)
     sub = dataclasses.make_dataclass(
@@ -707,7 +701,7 @@ def test_prefect_version_read_without_importing_prefect() -> None:
     code = (
         "import sys\n"
         "from winnow.tasks.store import RunStore\n"
-        "from winnow.tasks._provenance import version_info\n"
+        "from winnow.tasks.store._hashes import version_info\n"
         "v = version_info()\n"
         "assert not [m for m in sys.modules if m.split('.')[0] == 'prefect'], 'imported'\n"
         "print(v['prefect_version'])\n"
@@ -742,7 +736,7 @@ _values = st.recursive(
 @settings(max_examples=100, deadline=None)
 @given(_values)
 def test_tagged_json_round_trip(value: Any) -> None:
-    from winnow.tasks._store import from_json, to_json
+    from winnow.tasks.store._core import from_json, to_json
 
     text = to_json(value)
 

@@ -2,7 +2,7 @@
 one writer at a time, newer schemas and existing stores are refused.
 
 The killed-commit tests run a child Python process that stops at a named step of the commit
-(through ``winnow.tasks._store.commit_hook``) and is then SIGKILLed, as a crash would.
+(through ``winnow.tasks.store._core.commit_hook``) and is then SIGKILLed, as a crash would.
 """
 
 from __future__ import annotations
@@ -20,13 +20,7 @@ import numpy as np
 import pytest
 
 from winnow.tasks.records import Chain
-from winnow.tasks.store import (
-    RunStore,
-    SchemaVersionError,
-    StoreBusyError,
-    StoreFormatError,
-    check,
-)
+from winnow.tasks.store import RunStore, SchemaVersionError, StoreBusyError, StoreFormatError, check
 
 CHILD = textwrap.dedent(
     """

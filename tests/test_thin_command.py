@@ -16,7 +16,7 @@ import pytest
 from typer.testing import CliRunner
 
 from winnow.flows.cli import app
-from winnow.tasks.thinning import thin
+from winnow.tasks.thin import thin
 
 runner = CliRunner()
 
@@ -133,7 +133,7 @@ def test_command_module_imports_no_heavy_modules():
 
     code = (
         "import sys, winnow.flows._cmd_thin; "
-        "bad = [m for m in ('prefect', 'scipy.optimize', 'numpy', 'winnow.tasks.thinning') "
+        "bad = [m for m in ('prefect', 'scipy.optimize', 'numpy', 'winnow.tasks.thin') "
         "if m in sys.modules]; print(bad)"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

@@ -6,8 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks._mmd import ExactMMD
-from winnow.tasks.thinning import thin
+from winnow.tasks.thin import thin
+from winnow.tasks.thin._mmd import ExactMMD
 
 
 @pytest.fixture(scope="module")

@@ -12,14 +12,14 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from winnow.tasks._features import draw_feature_map, draw_unit_frequencies, features_of_rows
-from winnow.tasks._kernels import KERNELS, get_kernel, median_heuristic
+from winnow.tasks.thin._features import draw_feature_map, draw_unit_frequencies, features_of_rows
+from winnow.tasks.thin._kernels import KERNELS, get_kernel, median_heuristic
 
 KERNEL_NAMES = sorted(KERNELS)
 
 
 def _closed_form(name: str, diff: np.ndarray, ell: float) -> np.ndarray:
-    """Kernels written out independently of tasks/_kernels.py."""
+    """Kernels written out independently of tasks/thin/_kernels.py."""
     r = np.sqrt(np.sum(diff**2, axis=-1))
     if name == "gaussian":  # R&W Eq. 4.9
         return np.exp(-(r**2) / (2 * ell**2))
@@ -132,7 +132,7 @@ def test_unknown_kernel_names_value():
 
 def test_streamed_mean_embedding_matches_direct_mean_and_thread_count():
     # oracle: the plain numpy weighted mean of the full feature matrix
-    from winnow.tasks._features import mean_embedding
+    from winnow.tasks.thin._features import mean_embedding
 
     rng = np.random.default_rng(6)
     x = rng.standard_normal((1003, 3)) * [1e-6, 1.0, 1e9]

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from winnow.tasks.thinning import thin
+from winnow.tasks.thin import thin
 
 
 def _rwm_chain(n: int, rng: np.random.Generator) -> tuple[np.ndarray, float]:
@@ -102,8 +102,8 @@ def test_greedy_keeps_the_better_of_corrective_and_herding_sets():
     # oracle: kernel herding written directly on the feature Gram matrix (Chen, Welling &
     # Smola 2010, Eq. 4) and the feature-space MMD |w Phi - mu| of each set with its optimal
     # simplex weights; the greedy selector must return the better of the two greedy sets
-    from winnow.tasks._selectors import GreedySelector, Problem, _corrective_positions
-    from winnow.tasks._weights import optimal_weights
+    from winnow.tasks.thin._selectors import GreedySelector, Problem, _corrective_positions
+    from winnow.tasks.thin._weights import optimal_weights
 
     kept = set()
     for seed in range(6):

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks.thinning import mmd_exact, reweight, thin
+from winnow.tasks.thin import mmd_exact, reweight, thin
 
 
 @pytest.fixture(scope="module")

@@ -12,9 +12,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from winnow.tasks._selectors import GreedyState, Problem, corrective_scores
 from winnow.tasks.records import Chain, Selection
-from winnow.tasks.thinning import SELECTORS, disjoint, extend, replace, thin
+from winnow.tasks.thin import SELECTORS, disjoint, extend, replace, thin
+from winnow.tasks.thin._selectors import GreedyState, Problem, corrective_scores
 
 FAST = {"n_features": 128, "exact_max_rows": 5000}
 GENETIC_FAST = {"population": 8, "generations": 6}
@@ -274,7 +274,7 @@ def test_invariants_on_random_chains(n, d, reps, m_frac, method, rule, kernel, s
 
 def test_inherited_gram_equals_direct_product():
     # oracle: the Gram matrix computed directly, phi_s phi_s^T (numpy)
-    from winnow.tasks._selectors import _inherited_gram
+    from winnow.tasks.thin._selectors import _inherited_gram
 
     rng = np.random.default_rng(12)
     phi = rng.standard_normal((40, 16))
@@ -304,7 +304,7 @@ def test_genetic_stops_after_patience_and_reports_generations(chain):
 
 def test_neighbours_match_brute_force():
     # oracle: nearest rows by sorting all Euclidean distances (numpy)
-    from winnow.tasks._selectors import _Neighbours
+    from winnow.tasks.thin._selectors import _Neighbours
 
     rng = np.random.default_rng(4)
     coords = rng.standard_normal((300, 3))

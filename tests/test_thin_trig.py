@@ -1,4 +1,4 @@
-"""Compiled float32 cos/sin kernels (tasks/_trig.py) and the feature passes that use them.
+"""Compiled float32 cos/sin kernels (tasks/thin/_trig.py) and the feature passes that use them.
 
 Oracle throughout: numpy's float64 ``np.cos`` / ``np.sin`` evaluated at the same float32
 arguments widened to float64 (numpy library; its float64 functions are accurate to about
@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks import _trig
-from winnow.tasks._features import draw_feature_map, features_of_rows, mean_embedding
-from winnow.tasks._kernels import get_kernel
+from winnow.tasks.thin import _trig as _trig
+from winnow.tasks.thin._features import draw_feature_map, features_of_rows, mean_embedding
+from winnow.tasks.thin._kernels import get_kernel
 
 U = 2.0**-24
 LIMIT = _trig.REDUCTION_LIMIT
@@ -218,7 +218,7 @@ def test_thinning_import_does_not_load_numba_and_kernels_release_the_gil():
     import subprocess
     import sys
 
-    code = "import sys, winnow.tasks.thinning; print('numba' in sys.modules)"
+    code = "import sys, winnow.tasks.thin; print('numba' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
     # the mean-embedding workers run the kernels in parallel only if they drop the GIL

@@ -16,7 +16,7 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from winnow.tasks.config import ThinSettings
-from winnow.tasks.thinning import reweight, thin
+from winnow.tasks.thin import reweight, thin
 
 N = 4000
 GENETIC_FAST = {"population": 8, "generations": 10}

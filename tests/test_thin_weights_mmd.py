@@ -11,10 +11,10 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize
 
-from winnow.tasks._features import draw_feature_map, features_of_rows
-from winnow.tasks._kernels import KERNELS, get_kernel
-from winnow.tasks._mmd import ExactMMD
-from winnow.tasks.thinning import mmd_exact, optimal_weights
+from winnow.tasks.thin import mmd_exact, optimal_weights
+from winnow.tasks.thin._features import draw_feature_map, features_of_rows
+from winnow.tasks.thin._kernels import KERNELS, get_kernel
+from winnow.tasks.thin._mmd import ExactMMD
 
 
 def _slsqp(a: np.ndarray, mu: np.ndarray) -> np.ndarray:

@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import winnow.tasks.thinning as thinning
-from winnow.tasks.thinning import extend, thin
+from winnow.tasks.thin import _engine as thinning
+from winnow.tasks.thin import extend, thin
 
 
 def _banana(n: int, seed: int) -> np.ndarray:

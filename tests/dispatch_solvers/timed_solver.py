@@ -28,9 +28,7 @@ def main() -> int:
     x, y = float(values["x"]), float(values["y"])
     Path("out.json").write_text(json.dumps({"q": x + 2.0 * y}))
     end = time.time()
-    fd = os.open(
-        Path(values["state"]) / "times.log", os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644
-    )
+    fd = os.open(Path(values["state"]) / "times.log", os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
     try:
         os.write(fd, f"{Path.cwd().name} {start!r} {end!r}\n".encode())
     finally:

@@ -26,8 +26,9 @@ def main() -> None:
         marker.write_text(str(os.getpid()))
         time.sleep(600)  # the test kills the process here
 
-    from winnow.tasks import _store, stages
+    from winnow.tasks import prefect_tasks
     from winnow.tasks.store import RunStoreWriter
+    from winnow.tasks.store import _core as _store
 
     if where == "checkpoint":
         save = RunStoreWriter.save_checkpoint
@@ -38,13 +39,13 @@ def main() -> None:
 
         RunStoreWriter.save_checkpoint = save_then_pause
     elif where == "thin":
-        thin_stage = stages.thin_stage
+        thin_stage = prefect_tasks.thin_stage
 
         def pause_in_thin(*args, **kwargs):
             reached()
             return thin_stage(*args, **kwargs)
 
-        stages.thin_stage = pause_in_thin
+        prefect_tasks.thin_stage = pause_in_thin
     elif where == "runs-commit":
         write_runs = RunStoreWriter.write_runs
         armed = []
