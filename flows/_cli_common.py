@@ -17,7 +17,6 @@ signal exits at once.
 from __future__ import annotations
 
 import contextlib
-import fnmatch
 import functools
 import os
 import signal
@@ -31,7 +30,6 @@ __all__ = [
     "EXIT_INTERNAL",
     "EXIT_USAGE",
     "HARD_EXIT_AFTER",
-    "PLAIN_VALIDATORS",
     "UsageError",
     "fail",
     "guarded",
@@ -59,31 +57,6 @@ def fail(message: str) -> NoReturn:
     raise SystemExit(EXIT_USAGE)
 
 
-#: Functions that validate user input (a command-line argument, a config value checked against
-#: data) but raise a plain ``ValueError``/``TypeError`` rather than
-#: :class:`~winnow.tasks.errors.InputError`: ``(module, function)``. Such an error raised
-#: in one of them is bad input. Each entry should become ``raise InputError(`` in its module,
-#: and then leave this list; ``_validate_*`` helpers (DEVELOPERS.md, "Validation at the
-#: boundary") count as validators without an entry. Module names are ``fnmatch`` patterns:
-#: the run store's code moves between its modules (``store``, ``_store``, ``_store_*``).
-PLAIN_VALIDATORS: frozenset[tuple[str, str]] = frozenset(
-    {
-        ("winnow.tasks.stages", "preflight"),  # the study config against its files and data
-        ("winnow.tasks.stages", "_check_creatable"),  # store / work_dir paths
-        ("winnow.tasks.stages", "read_observations"),  # the observations CSV
-        ("winnow.tasks.thin", "_prepare"),  # a chain without one finite row
-        ("winnow.tasks.thin", "_run_one_thread"),  # --budget against the distinct rows
-        ("winnow.tasks.thin._kernels", "get_kernel"),  # --kernel
-        ("winnow.tasks.sample", "burn_in_count"),  # --burn-in
-        ("winnow.tasks.sample", "chain_to_array"),  # --chains
-        ("winnow.tasks*store*", "resolve_revision"),  # -r REV
-        ("winnow.tasks*store*", "trace"),  # winnow trace POINT
-        ("winnow.tasks*store*", "_find_run"),  # winnow trace POINT
-        ("winnow.tasks*store*", "_lineage"),  # winnow trace ROW
-    }
-)
-
-
 def _raised_by_validator(exc: BaseException) -> bool:
     """Whether ``exc`` was raised (its last traceback frame) by one of winnow's validators."""
     tb = exc.__traceback__
@@ -95,9 +68,7 @@ def _raised_by_validator(exc: BaseException) -> bool:
     name = tb.tb_frame.f_code.co_name
     if not module.startswith("winnow."):
         return False
-    if name.startswith("_validate"):
-        return True
-    return any(name == func and fnmatch.fnmatchcase(module, mod) for mod, func in PLAIN_VALIDATORS)
+    return name.startswith("_validate")
 
 
 def is_usage_error(exc: BaseException) -> bool:
@@ -107,8 +78,9 @@ def is_usage_error(exc: BaseException) -> bool:
     :class:`~winnow.tasks.errors.InputError` (config and chain files among others), pydantic's
     ``ValidationError``, the dedicated errors of decks, run stores and the writer lock, a file
     the user named that is missing or is a folder, an existing file a command refuses to
-    overwrite, and a ``ValueError``/``TypeError`` raised inside one of winnow's validators
-    (see :data:`PLAIN_VALIDATORS`). Any other ``ValueError`` or ``TypeError`` is a bug.
+    overwrite, and a ``ValueError``/``TypeError`` raised inside one of winnow's ``_validate_*``
+    helpers (DEVELOPERS.md, "Validation at the boundary"). Any other ``ValueError`` or
+    ``TypeError`` is a bug.
     """
     from winnow.tasks.errors import InputError
 

@@ -7,6 +7,8 @@ from pathlib import Path
 
 import numpy as np
 
+from winnow.tasks.errors import InputError
+
 from .config import StudyConfig, importable, model_search_path, resolve
 from .dispatch import deck_spec, solver_command
 from .sample import observation_columns, read_observations
@@ -29,17 +31,17 @@ def _check_creatable(field: str, path: Path, *, is_dir: bool) -> None:
 
     if path.exists():
         if is_dir and not path.is_dir():
-            raise ValueError(f"{field}: {path} exists and is not a folder")
+            raise InputError(f"{field}: {path} exists and is not a folder")
         if not is_dir and path.is_dir():
-            raise ValueError(f"{field}: {path} is a folder; expected an HDF5 file path")
+            raise InputError(f"{field}: {path} is a folder; expected an HDF5 file path")
         return
     parent = path.parent
     while not parent.exists():
         parent = parent.parent
     if not parent.is_dir():
-        raise ValueError(f"{field}: cannot create {path}: {parent} is a file, not a folder")
+        raise InputError(f"{field}: cannot create {path}: {parent} is a file, not a folder")
     if not os.access(parent, os.W_OK | os.X_OK):
-        raise ValueError(f"{field}: cannot create {path}: {parent} is not writable")
+        raise InputError(f"{field}: cannot create {path}: {parent} is not writable")
 
 
 def preflight(config: StudyConfig, base_dir: Path) -> None:
@@ -63,7 +65,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
         try:
             load_callable(spec, search_path=search)
         except (ImportError, AttributeError, ValueError, TypeError) as exc:
-            raise ValueError(f"{field}: {exc}") from None
+            raise InputError(f"{field}: {exc}") from None
     if s.observations is not None:
         o = s.observations
         read_observations(resolve(here, o.file), observation_columns(o))
@@ -82,7 +84,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
         finite = chain.samples[np.isfinite(chain.samples).all(axis=1)]
         distinct = len(np.unique(finite, axis=0)) if finite.size else 0
         if config.budget > distinct:
-            raise ValueError(
+            raise InputError(
                 f"budget: {config.budget} is larger than the {distinct} distinct finite rows "
                 f"of sample.import_chain.file {imp.file}"
             )
@@ -93,12 +95,12 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
             try:
                 validate_qoi_spec(q.reader_spec())
             except (ValueError, TypeError) as exc:
-                raise ValueError(f"collect.qoi[{q.name}].reader: {exc}") from None
+                raise InputError(f"collect.qoi[{q.name}].reader: {exc}") from None
         if q.cheap_qoi:
             try:
                 load_callable(q.cheap_qoi, search_path=search)
             except (ImportError, AttributeError, ValueError, TypeError) as exc:
-                raise ValueError(f"collect.qoi[{q.name}].cheap_qoi: {exc}") from None
+                raise InputError(f"collect.qoi[{q.name}].cheap_qoi: {exc}") from None
     d = config.dispatch
     decks, template_root = deck_spec(config, base_dir)
     if not template_root.is_dir():
@@ -133,7 +135,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
                 template_root=template_root,
             )
         except ValueError as exc:
-            raise ValueError(f"dispatch.templates: {exc}") from None
+            raise InputError(f"dispatch.templates: {exc}") from None
     for field, rel in (("store", config.store), ("work_dir", config.work_dir)):
         _check_creatable(field, resolve(here, rel), is_dir=field == "work_dir")
     exe = solver_command(d.command)[0]

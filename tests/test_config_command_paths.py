@@ -1,4 +1,4 @@
-"""Config checks of the solver command's files and of the staging lists (tasks/config.py).
+"""Config checks of the solver command's files and of the staging lists (tasks/config/_dispatch.py).
 
 The solver runs with its run folder as working folder (tasks/dispatch/_process.py, ``cwd=run_dir``);
 Python's subprocess documentation ("Popen constructor", ``cwd``) states that a relative

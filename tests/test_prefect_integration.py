@@ -114,7 +114,7 @@ _EVERY_DISPATCH_SETTING = {
 
 
 def test_solver_block_carries_every_dispatch_setting():
-    """The block's fields are the dispatch section's (DispatchSettings in tasks/config.py):
+    """The block's fields are the dispatch section's (DispatchSettings in tasks/config/_dispatch.py):
     a field added to one and not the other fails here, and as_config() gives each back."""
     from winnow.tasks.config import DispatchSettings
 

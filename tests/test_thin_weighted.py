@@ -120,7 +120,7 @@ def test_replacement_off_is_reported(chain, kwargs, reason):
 
 
 def test_setting_declared_and_validated():
-    # project contract: every thin setting is declared in ThinSettings (tasks/config.py)
+    # project contract: every thin setting is declared in ThinSettings (tasks/config/_thin.py)
     assert ThinSettings().replace_unweighted is True
     assert ThinSettings(replace_unweighted=False).replace_unweighted is False
     with pytest.raises(TypeError, match="replace_unweighted must be True or False"):

@@ -42,6 +42,7 @@ import numpy as np
 import numpy.typing as npt
 from scipy import special
 
+from winnow.tasks.errors import InputError
 from winnow.tasks.records import Chain, Diagnostics, ParameterDiagnostics
 
 __all__ = [
@@ -299,12 +300,12 @@ def burn_in_count(n_draws: int, burn_in: BurnIn = "half") -> tuple[int, str]:
             "none": (0, f"no burn-in removed: all {n_draws} draws of each chain kept"),
         }
         if burn_in not in rules:
-            raise ValueError(f"burn_in must be 'half', 'none' or an int, got {burn_in!r}")
+            raise InputError(f"burn_in must be 'half', 'none' or an int, got {burn_in!r}")
         return rules[burn_in]
     if isinstance(burn_in, (int, np.integer)):
         n = int(burn_in)
         if n < 0 or n >= n_draws:
-            raise ValueError(
+            raise InputError(
                 f"burn_in must be between 0 and the draws per chain minus one "
                 f"({n_draws - 1}), got {n}"
             )
@@ -478,15 +479,15 @@ def chain_to_array(chain: Chain, *, chains: int | None = None) -> tuple[np.ndarr
     labels = np.unique(chain.chain_index)
     if chains is not None:
         if isinstance(chains, bool) or not isinstance(chains, (int, np.integer)) or chains < 1:
-            raise ValueError(f"chains must be a positive integer, got {chains!r}")
+            raise InputError(f"chains must be a positive integer, got {chains!r}")
         if labels.size > 1 and chains != labels.size:
-            raise ValueError(
+            raise InputError(
                 f"the chain already names {labels.size} chains; cannot split it into {chains}"
             )
         order = np.lexsort((chain.draw_index, chain.chain_index))
         per = chain.n // int(chains)
         if per < 4:
-            raise ValueError(
+            raise InputError(
                 f"{chain.n} rows cannot be split into {chains} chains of at least 4 draws"
             )
         rows = order[: per * int(chains)].reshape(int(chains), per)

@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 
 from winnow.tasks.config import StudyConfig, model_search_path, resolve
+from winnow.tasks.errors import InputError
 from winnow.tasks.records import (
     Chain,
     Progress,
@@ -64,12 +65,12 @@ def read_observations(path: Path, required: Sequence[str] | Mapping[str, str]) -
     with path.open(newline="", encoding="utf-8") as fh:
         rows = [r for r in csv.reader(fh) if r and not r[0].lstrip().startswith("#")]
     if len(rows) < 2:
-        raise ValueError(f"{path}: expected a header row and at least one data row")
+        raise InputError(f"{path}: expected a header row and at least one data row")
     header = [h.strip() for h in rows[0]]
     if isinstance(required, Mapping):
         bad = [(f, c) for f, c in required.items() if c not in header]
         if bad:
-            raise ValueError(
+            raise InputError(
                 "\n".join(
                     f"{f}: {c!r} is not a column of {path} (columns: {', '.join(header)})"
                     for f, c in bad
@@ -78,20 +79,20 @@ def read_observations(path: Path, required: Sequence[str] | Mapping[str, str]) -
         required = list(required.values())
     missing = [c for c in required if c not in header]
     if missing:
-        raise ValueError(f"{path}: missing column(s) {missing}; the file has {header}")
+        raise InputError(f"{path}: missing column(s) {missing}; the file has {header}")
     data: dict[str, list[float]] = {h: [] for h in header}
     for lineno, row in enumerate(rows[1:], start=2):
         if len(row) != len(header):
-            raise ValueError(f"{path}: line {lineno} has {len(row)} cells, expected {len(header)}")
+            raise InputError(f"{path}: line {lineno} has {len(row)} cells, expected {len(header)}")
         for h, cell in zip(header, row, strict=True):
             try:
                 v = float(cell)
             except ValueError:
-                raise ValueError(
+                raise InputError(
                     f"{path}: line {lineno}, column {h!r}: expected a number, got {cell!r}"
                 ) from None
             if not math.isfinite(v):
-                raise ValueError(
+                raise InputError(
                     f"{path}: line {lineno}, column {h!r}: missing or non-finite value {cell!r}"
                 )
             data[h].append(v)

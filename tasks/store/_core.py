@@ -28,6 +28,8 @@ from typing import Any
 import h5py
 import numpy as np
 
+from winnow.tasks.errors import InputError
+
 from ._chain import (
     read_chain,
     read_checkpoint,
@@ -370,7 +372,7 @@ def resolve_revision(f: h5py.File, revision: str | int | None, path: Path) -> st
     revs = revisions(f)
     if revision is None or revision == "latest":
         if not revs:
-            raise ValueError(f"store {str(path)!r} has no revisions yet")
+            raise InputError(f"store {str(path)!r} has no revisions yet")
         return revs[-1]
     if isinstance(revision, bool):
         raise TypeError(f"revision must be str or int, got {revision!r}")
@@ -383,7 +385,7 @@ def resolve_revision(f: h5py.File, revision: str | int | None, path: Path) -> st
         raise TypeError(f"revision must be str or int, got {type(revision).__name__}")
     if name not in revs:
         known = ", ".join(revs) if revs else "none"
-        raise ValueError(f"revision {revision!r} not in store {str(path)!r} (revisions: {known})")
+        raise InputError(f"revision {revision!r} not in store {str(path)!r} (revisions: {known})")
     return name
 
 

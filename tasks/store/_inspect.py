@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Any, NoReturn
 import h5py
 import numpy as np
 
+from winnow.tasks.errors import InputError
 from winnow.tasks.records import RUN_STATES, QoIEstimate, RunOutcome, RunSpec, Selection
 
 from . import _core as S
@@ -290,7 +291,7 @@ def _attempt_dicts(o: RunOutcome) -> list[dict[str, Any]]:
     return [_attempt_dict(a, o.run_dir, last) for a in o.attempts]
 
 
-def _validate_point_error(message: str, kind: type[Exception] = ValueError) -> NoReturn:
+def _validate_point_error(message: str, kind: type[Exception] = InputError) -> NoReturn:
     """Raise the error of a POINT (or revision) that names nothing in the store. Bad input,
     not a bug: raised from a ``_validate_`` helper as DEVELOPERS.md asks, so that the command
     line tells the two apart wherever the caller lives."""

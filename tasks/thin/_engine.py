@@ -48,6 +48,7 @@ from typing import Any, Literal
 import numpy as np
 import numpy.typing as npt
 
+from winnow.tasks.errors import InputError
 from winnow.tasks.records import Chain, Selection
 
 from ._features import (
@@ -298,13 +299,13 @@ def _prepare(x: np.ndarray, nonfinite: str, standardise: bool, chunk: int) -> _P
     finite = np.isfinite(x).all(axis=1)
     n_bad = int(x.shape[0] - np.count_nonzero(finite))
     if n_bad and nonfinite == "raise":
-        raise ValueError(
+        raise InputError(
             f"samples has {n_bad} row(s) with NaN or inf values (nonfinite='raise'); "
             f"first at row {int(np.flatnonzero(~finite)[0])}"
         )
     finite_rows = None if n_bad == 0 else np.flatnonzero(finite)
     if finite_rows is not None and finite_rows.size == 0:
-        raise ValueError("samples has no row with all values finite")
+        raise InputError("samples has no row with all values finite")
     first, counts, inverse = _dedup(x, finite_rows, chunk)
     if finite_rows is not None:
         first = finite_rows[first]
@@ -669,11 +670,11 @@ def _run_one_thread(
     allowed[fixed] = True
     n_avail = int(np.count_nonzero(allowed))
     if m > n_avail:
-        raise ValueError(
+        raise InputError(
             f"budget must be <= the number of distinct usable rows ({n_avail}), got {m}"
         )
     if fixed.size > m:
-        raise ValueError(f"budget ({m}) is smaller than the rows to keep ({fixed.size})")
+        raise InputError(f"budget ({m}) is smaller than the rows to keep ({fixed.size})")
 
     # bandwidth ---------------------------------------------------------------------------
     bw_info: dict[str, Any] = {}

@@ -41,6 +41,8 @@ from typing import Literal
 import numpy as np
 from scipy import special
 
+from winnow.tasks.errors import InputError
+
 __all__ = [
     "KERNELS",
     "Kernel",
@@ -201,7 +203,7 @@ def get_kernel(kernel: str | Kernel) -> Kernel:
     if isinstance(kernel, Kernel):
         return kernel
     if not isinstance(kernel, str) or kernel not in KERNELS:
-        raise ValueError(f"kernel must be one of {sorted(KERNELS)}, got {kernel!r}")
+        raise InputError(f"kernel must be one of {sorted(KERNELS)}, got {kernel!r}")
     return KERNELS[kernel]
 
 
