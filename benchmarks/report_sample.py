@@ -21,8 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from winnow.tasks.collect import ReportData, build_report, estimate_qoi, export_csv
-from winnow.tasks.collect._uncertainty import ChainGeometry
+from winnow.tasks.collect import ChainGeometry, ReportData, build_report, estimate_qoi, export_csv
 from winnow.tasks.records import Attempt, Diagnostics, ParameterDiagnostics, QoIValue, RunOutcome
 from winnow.tasks.thin import thin
 
