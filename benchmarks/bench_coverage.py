@@ -50,9 +50,11 @@ BUDGETS = (10, 30, 100)
 def _ess_params(x: np.ndarray, ci: np.ndarray) -> float:
     """Smallest split-chain ESS of the parameters (the sample stage gives the rank-normalised
     bulk ESS of each parameter; for these chains the two are close)."""
-    from winnow.tasks.collect._estimates import chain_ess
+    from winnow.tasks.collect import chain_ess
 
     return float(np.min(chain_ess(x, ci)))
+
+
 QS = (0.05, 0.5, 0.95)
 LEVEL = 0.95
 
@@ -80,8 +82,7 @@ def _true_quantiles(target, f, grid: int = 1201) -> tuple[np.ndarray, float]:
 def _one(args: tuple[str, int]) -> list[dict]:
     from scipy import stats
 
-    from winnow.tasks.collect._estimates import estimate_qoi
-    from winnow.tasks.collect._uncertainty import ChainGeometry
+    from winnow.tasks.collect import ChainGeometry, estimate_qoi
     from winnow.tasks.thin import reweight, thin
 
     tname, seed = args
@@ -136,7 +137,10 @@ def _one(args: tuple[str, int]) -> list[dict]:
                 comp = h["components"][0]
                 tq_ = float(stats.t.ppf(0.5 + LEVEL / 2, max(comp["dof"], 1)))
                 row = {
-                    "target": tname, "kind": kind, "m": m, "scen": sc,
+                    "target": tname,
+                    "kind": kind,
+                    "m": m,
+                    "scen": sc,
                     "err": float(h["estimate"]) - tv,
                     "err_plain": float(est.mean) - tv,
                     "err_plain_chain": float(est.mean) - fchain,
@@ -149,7 +153,9 @@ def _one(args: tuple[str, int]) -> list[dict]:
                 }
                 if full:
                     qi = comp["quantile_intervals"]
-                    row["cov_q"] = [bool(qi[q][0] <= tvq <= qi[q][1]) for q, tvq in zip(QS, tqs, strict=True)]
+                    row["cov_q"] = [
+                        bool(qi[q][0] <= tvq <= qi[q][1]) for q, tvq in zip(QS, tqs, strict=True)
+                    ]
                     lo, hi = comp["exceedance_intervals"][q90]
                     row["cov_p"] = bool(lo <= tp <= hi)
                 rows.append(row)
@@ -195,8 +201,10 @@ def main() -> None:
         f"{'rmse_pl':>9s} {'ratio':>5s} {'ratio_c':>7s} {'cov_post':>8s} {'cov_chain':>9s} {'flag':>5s} "
         f"{'width':>6s} {'cov_q05/50/95':>14s} {'cov_p':>5s}  rules"
     )
-    keys = sorted({(r["target"], r["kind"], r["m"], r["scen"]) for r in rows},
-                  key=lambda k: (list(TARGETS).index(k[0]), k[1], k[2], k[3]))
+    keys = sorted(
+        {(r["target"], r["kind"], r["m"], r["scen"]) for r in rows},
+        key=lambda k: (list(TARGETS).index(k[0]), k[1], k[2], k[3]),
+    )
     for k in keys:
         rs = [r for r in rows if (r["target"], r["kind"], r["m"], r["scen"]) == k]
         err = np.array([r["err"] for r in rs])
