@@ -399,9 +399,10 @@ def _rev_name(r: RunStoreReader, revision: str | int) -> str:
         return S.resolve_revision(f, revision, r.path)
 
 
-# long: one straight pass upstream to downstream, each block filling one key of the lineage
-# in the order docs/store-layout.md ("Lineage") lists them; split up it would pass the same
-# open file and half-built dict through every piece.
+# One straight pass upstream to downstream, each block filling one key of the lineage in the
+# order docs/store-layout.md ("Lineage") lists them; split up it would pass the same open file
+# and half-built dict through every piece.
+# long: one pass filling the lineage keys in their documented order
 def _lineage(
     r: RunStoreReader, rev: str, row: int, spec: RunSpec | None, outcome: RunOutcome | None
 ) -> dict[str, Any]:
