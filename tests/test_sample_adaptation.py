@@ -1,4 +1,4 @@
-"""Adaptive Metropolis adaptation (tasks/sample/_samplers.py): the pooled covariance against an
+"""Adaptive Metropolis adaptation (tasks/sample/_metropolis.py): the pooled covariance against an
 independent numpy oracle, the window schedule, and recovery of a badly scaled, strongly
 correlated 10-D Gaussian.
 
@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 
 from winnow.tasks.sample import sample
-from winnow.tasks.sample._samplers import AdaptiveMetropolis, StepContext
+from winnow.tasks.sample._metropolis import AdaptiveMetropolis
+from winnow.tasks.sample._move import StepContext
 
 D = 10
 SCALE = 10.0 ** np.linspace(-1, 1, D)

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from winnow.tasks.sample import sample
-from winnow.tasks.sample._samplers import ProgressHook
+from winnow.tasks.sample._progress import ProgressHook
 
 PRIORS = [{"name": "a", "dist": "normal", "mu": 0.0, "sigma": 1.0},
           {"name": "b", "dist": "normal", "mu": 0.0, "sigma": 1.0}]  # fmt: skip

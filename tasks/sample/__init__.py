@@ -26,6 +26,7 @@ from ._diagnostics import (
 )
 from ._sampling import (
     DISTS,
+    LIKELIHOODS,
     SAMPLERS,
     STATE_FORMAT,
     LogPosterior,
@@ -49,6 +50,7 @@ __all__ = [
     "ConvergenceError",
     "DEFAULT_THRESHOLDS",
     "DISTS",
+    "LIKELIHOODS",
     "LogPosterior",
     "Move",
     "Observations",

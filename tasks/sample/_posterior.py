@@ -36,14 +36,13 @@ import numpy as np
 import numpy.typing as npt
 from scipy import special
 
-from ._priors import _SMALL, Prior, PriorSet, as_prior_set
+from ._priors import Prior, PriorSet, as_prior_set
 
 __all__ = ["LIKELIHOODS", "LogPosterior", "build_log_posterior", "load_callable"]
 
 Likelihood = Literal["gaussian", "student_t"]
 LIKELIHOODS: tuple[str, ...] = ("gaussian", "student_t")
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
-_SMALL_LL = 64  # batches of up to this many predictions: the likelihood in Python floats
 
 
 # --------------------------------------------------------------------------------------------
@@ -155,10 +154,8 @@ class LogPosterior:
         *,
         model: str,
         vectorised: bool,
-        small: Callable[[np.ndarray], list[float]] | None = None,
     ) -> None:
         self.priors = priors
-        self._small = small
         self.names = priors.names
         self.units = priors.units
         self.model = model
@@ -184,7 +181,7 @@ class LogPosterior:
 
         Returns ``(log posterior + log-Jacobian, log posterior, x)`` at ``x = to_user(u)``,
         shapes (k,), (k,), (k, d), with the prior's map, density and Jacobian computed in
-        one pass (:meth:`PriorSet.transform`). Call it under
+        one pass (:meth:`PriorSet.transform_rows`). Call it under
         ``np.errstate(all="ignore")``, as :func:`~winnow.tasks.sample.sample` does once
         for its whole run (entering it at every call costs as much as the rest of the
         likelihood for a small model).
@@ -196,9 +193,6 @@ class LogPosterior:
     def rows_at_unconstrained(self, u: np.ndarray) -> np.ndarray:
         """:meth:`at_unconstrained` laid out as the samplers keep their chains: shape
         (k, 2 d + 2), rows ``[u | x | log posterior + log-Jacobian | log posterior]``."""
-        lists = self.lists_at_unconstrained(u)
-        if lists is not None:
-            return np.array(lists)
         rows = self.priors.transform_rows(u)
         d = self.d
         x = rows[:, d : 2 * d]
@@ -207,33 +201,6 @@ class LogPosterior:
         lp = self._add_model(x, rows[:, 2 * d + 1])  # in place: the log prior's column
         rows[:, 2 * d] += lp  # the log-Jacobian's column
         return rows
-
-    def lists_at_unconstrained(self, u: np.ndarray) -> list[list[float]] | None:
-        """:meth:`rows_at_unconstrained` as lists of Python floats, for a few rows of a
-        model called row by row with a known Gaussian noise; None otherwise (or when a
-        value is not finite): then use :meth:`rows_at_unconstrained`.
-
-        The prior's terms and the likelihood are summed in Python floats and numpy sees
-        the rows only to pass them to the model. After a slow model every numpy call runs
-        with cold CPU caches, so this saves most of the per-step work on a handful of
-        chains.
-        """
-        if self._small is None or u.size > _SMALL:
-            return None
-        lists = self.priors.rows_small(u)
-        if lists is None:
-            return None
-        d = self.d
-        ll = self._small(np.array([r[d : 2 * d] for r in lists]))
-        self.n_evals += len(ll)
-        for r, v in zip(lists, ll, strict=True):
-            if not math.isfinite(v):  # outside the model's domain: see the module notes
-                self.n_nonfinite += 1
-                v = -math.inf
-            lp = r[-1] + v
-            r[-1] = lp  # log posterior
-            r[-2] += lp  # + log-Jacobian
-        return lists
 
     def _add_model(self, x: np.ndarray, out: np.ndarray) -> np.ndarray:
         """Add the model's term to the log prior ``out`` (k,) of rows ``x``, in place."""
@@ -341,29 +308,6 @@ def _gaussian_fixed(s: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndar
         r *= r
         ll = np.dot(r, half_prec)  # sum of r^2 / (2 s^2); np.dot: less overhead than @
         return np.subtract(const, ll, out=ll)
-
-    return loglik
-
-
-def _gaussian_fixed_lists(s: np.ndarray, y: np.ndarray) -> Callable[[np.ndarray], list[float]]:
-    """:func:`_gaussian_fixed` returning a list of floats: for up to ``_SMALL_LL`` values
-    the sums run in Python floats (the same terms; equal up to rounding)."""
-    half_prec = 0.5 / (s * s)
-    const = float(-np.log(s).sum() - s.size * _LOG_SQRT_2PI)
-    pairs = list(zip(y.tolist(), half_prec.tolist(), strict=True))
-    numpy_loglik = _gaussian_fixed(s)
-
-    def loglik(pred: np.ndarray) -> list[float]:
-        if pred.size > _SMALL_LL:
-            return numpy_loglik(pred, y).tolist()
-        out = []
-        for row in pred.tolist():
-            acc = 0.0
-            for p, (yj, hj) in zip(row, pairs, strict=True):
-                r = p - yj
-                acc += r * r * hj
-            out.append(const - acc)
-        return out
 
     return loglik
 
@@ -484,6 +428,21 @@ def _make_caller(
             )
         return out
 
+    return _choose_caller(func, args, out_shape, vectorised, probe, loop, batch)
+
+
+def _choose_caller(
+    func: Callable[..., Any],
+    args: tuple[Any, ...],
+    out_shape: tuple[int, ...],
+    vectorised: bool | str,
+    probe: np.ndarray,
+    loop: Callable[[np.ndarray], np.ndarray],
+    batch: Callable[[np.ndarray], np.ndarray],
+) -> tuple[Callable[[np.ndarray], np.ndarray], bool]:
+    """The row-by-row ``loop`` or the ``batch`` caller, as ``vectorised`` says or (auto) as
+    the probe rows show: a batch call must give the right shape and agree with single-row
+    calls."""
     choice = {"yes": True, "no": False, True: True, False: False, "auto": "auto"}
     if vectorised not in choice:
         raise ValueError(f"vectorised must be 'auto', 'yes' or 'no', got {vectorised!r}")
@@ -496,7 +455,6 @@ def _make_caller(
         with np.errstate(all="ignore"):
             loop(probe)
         return loop, False
-    # auto: a batch call must give the right shape and agree with single-row calls
     try:
         with np.errstate(all="ignore"):
             singles: np.ndarray | None = loop(probe)
@@ -580,15 +538,7 @@ def build_log_posterior(
     label = _describe(func)
 
     if log_density is not None:
-        ps = PriorSet(prior_list)
-        cols = _model_columns(ps, param_names, exclude=None)
-        caller, vec = _make_caller(log_density, label, None, (), vectorised, _probe_rows(ps, cols))
-
-        def evaluate_density(x: np.ndarray) -> np.ndarray:
-            # The user's density includes the prior: subtract ours so it is not counted twice.
-            return caller(x[:, cols]) - ps.logpdf(x)
-
-        return LogPosterior(ps, evaluate_density, model=label, vectorised=vec)
+        return _density_posterior(PriorSet(prior_list), log_density, label, vectorised, param_names)
 
     y = _validate_observations(observations)
     fixed_sigma, noise_col, prior_list = _noise(sigma, y.size, prior_list)
@@ -609,22 +559,35 @@ def build_log_posterior(
     identity = cols == list(range(ps.d))
     if fixed_sigma is not None and likelihood == "gaussian":
         fixed_loglik = _gaussian_fixed(fixed_sigma)
-        listed_loglik = _gaussian_fixed_lists(fixed_sigma, y)
 
         def evaluate_fixed(x: np.ndarray) -> np.ndarray:
             return fixed_loglik(caller(x if identity else x[:, cols]), y)
 
-        def evaluate_listed(x: np.ndarray) -> list[float]:
-            return listed_loglik(caller(x if identity else x[:, cols]))
-
-        small = None if vec else evaluate_listed  # a model called row by row
-        return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec, small=small)
+        return LogPosterior(ps, evaluate_fixed, model=label, vectorised=vec)
 
     def evaluate_forward(x: np.ndarray) -> np.ndarray:
         s = fixed_sigma[None, :] if fixed_sigma is not None else x[:, [noise_col]]
         return loglik(caller(x if identity else x[:, cols]) - y, s)
 
     return LogPosterior(ps, evaluate_forward, model=label, vectorised=vec)
+
+
+def _density_posterior(
+    ps: PriorSet,
+    log_density: Callable[..., Any],
+    label: str,
+    vectorised: bool | str,
+    param_names: Sequence[str] | None,
+) -> LogPosterior:
+    """The log posterior of a user's full log density (prior included)."""
+    cols = _model_columns(ps, param_names, exclude=None)
+    caller, vec = _make_caller(log_density, label, None, (), vectorised, _probe_rows(ps, cols))
+
+    def evaluate_density(x: np.ndarray) -> np.ndarray:
+        # The user's density includes the prior: subtract ours so it is not counted twice.
+        return caller(x[:, cols]) - ps.logpdf(x)
+
+    return LogPosterior(ps, evaluate_density, model=label, vectorised=vec)
 
 
 def _model_columns(

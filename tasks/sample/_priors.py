@@ -39,7 +39,6 @@ _ALIASES = {"truncated_normal": "truncnormal", "log_normal": "lognormal", "gauss
 _KEY_ALIASES = {"mean": "mu", "sd": "sigma", "std": "sigma", "distribution": "dist"}
 _KEYS = ("name", "dist", "low", "high", "mu", "sigma", "units")
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
-_SMALL = 48  # batches of up to this many values take the scalar path of transform()
 
 
 @dataclass(frozen=True)
@@ -122,19 +121,7 @@ class PriorSet:
         self._upper_only = ~np.isfinite(self.low) & np.isfinite(self.high)
         self._both = np.isfinite(self.low) & np.isfinite(self.high)
         self._width = np.where(self._both, self.high - self.low, 1.0)
-        self._idx_lower = np.flatnonzero(self._lower_only)
-        self._idx_upper = np.flatnonzero(self._upper_only)
-        self._idx_both = np.flatnonzero(self._both)
-        self._idx_one = np.flatnonzero(self._lower_only | self._upper_only)
-        self._log_width_sum = float(np.log(self._width[self._idx_both]).sum())
-        self._idx_gauss = np.flatnonzero(self._is_normal)
-        self._idx_lognormal = np.flatnonzero(self._is_lognormal)
-        # Constant part of the log density: normalising constants of every marginal.
-        non_uniform = ~self._is_uniform
-        self._log_const = float(
-            -self.log_norm.sum() - (np.log(self.sigma[non_uniform]) + _LOG_SQRT_2PI).sum()
-        )
-        self._build_fused()
+        self._plan()
 
     @property
     def d(self) -> int:
@@ -164,40 +151,146 @@ class PriorSet:
                 f"{dist}(mu={p.mu}, sigma={p.sigma})"
             )
 
-    # ---------------------------------------------------------------- densities
-    def logpdf(self, x: npt.ArrayLike) -> np.ndarray:
-        """Normalised log prior density of rows ``x``, shape (k, d) -> (k,); -inf outside."""
-        x = np.atleast_2d(np.asarray(x, dtype=np.float64))
-        inside = ((x >= self.low) & (x <= self.high)).all(axis=1)
-        out = np.full(x.shape[0], self._log_const)
-        g = self._idx_gauss
-        if g.size:
-            z = (x[:, g] - self.mu[g]) / self.sigma[g]
-            out -= 0.5 * np.einsum("ij,ij->i", z, z)
-        ln = self._idx_lognormal
-        if ln.size:
-            xl = x[:, ln]
-            lx = np.log(np.where(xl > 0, xl, 1.0))
-            z = (lx - self.mu[ln]) / self.sigma[ln]
-            out -= 0.5 * np.einsum("ij,ij->i", z, z) + lx.sum(axis=1)  # d log(x)/dx = 1/x
-        out[~inside] = -np.inf
-        return out
+    def _plan(self) -> None:
+        """Precompute, once, what the map and the density need: the columns of each kind
+        (basic slices where contiguous, so that indexing gives views) with their constants,
+        and the constant parts of the log density and of the log-Jacobian."""
+        one = np.flatnonzero(self._lower_only | self._upper_only)
+        both = np.flatnonzero(self._both)
+        gauss = np.flatnonzero(self._is_normal)
+        logn = np.flatnonzero(self._is_lognormal)
+        self._one = _columns(one)
+        self._one_base = np.where(self._lower_only, self.low, self.high)[one]
+        self._one_sign = np.where(self._lower_only, 1.0, -1.0)[one]
+        self._two = _columns(both)
+        self._two_low, self._two_high = self.low[both], self.high[both]
+        self._two_width = self._width[both]
+        self._gauss = _columns(gauss)
+        self._gauss_mu, self._gauss_inv = self.mu[gauss], 1.0 / self.sigma[gauss]
+        self._logn = _columns(logn)
+        self._logn_mu, self._logn_inv = self.mu[logn], 1.0 / self.sigma[logn]
+        # log|dx/du| of the logistic map holds log(high - low) for each such column.
+        self._log_width_sum = float(np.log(self._width[both]).sum())
+        # Normalising constants of every marginal (uniform: 1 / width; normal and
+        # log-normal: 1 / (sigma sqrt(2 pi)) over the truncation's probability).
+        non_uniform = ~self._is_uniform
+        self._log_const = float(
+            -self.log_norm.sum() - (np.log(self.sigma[non_uniform]) + _LOG_SQRT_2PI).sum()
+        )
 
-    # ---------------------------------------------------------------- transforms
+    # ---------------------------------------------------------------- the one pass
+    def transform_rows(self, u: np.ndarray) -> np.ndarray:
+        """The map to the user's units, its log-Jacobian and the log prior in one pass,
+        laid out as the samplers keep their chains.
+
+        Each kind of map and density is applied once, to all its columns of all rows (a
+        handful of numpy calls whatever ``k`` and ``d``); the map and density are those of
+        :meth:`to_user`, :meth:`log_jacobian` and :meth:`logpdf`, which call the same code.
+        Extreme rows may raise numpy's floating-point warnings (the sampler calls this
+        under ``np.errstate(all="ignore")``).
+
+        Parameters
+        ----------
+        u : ndarray, shape (k, d)
+            Rows in the unconstrained space (float64).
+
+        Returns
+        -------
+        rows : ndarray, shape (k, 2 d + 2)
+            ``[u | x | log_jac | log_prior]``: ``x = to_user(u)``, ``log_jac =
+            log_jacobian(u)``, ``log_prior = logpdf(x)`` (``-inf`` where ``u`` is NaN, so
+            that no model is run there).
+        """
+        d = self.d
+        rows = np.empty((u.shape[0], 2 * d + 2))
+        rows[:, :d] = u
+        x, log_jac, log_prior = rows[:, d : 2 * d], rows[:, 2 * d], rows[:, 2 * d + 1]
+        self._map(u, x, log_jac)
+        self._density(x, log_prior)
+        if not math.isfinite(np.add.reduce(log_jac) + np.add.reduce(log_prior)):
+            # NaN u gives NaN x: no density there (outside the support, as in logpdf). The
+            # density of a log-normal is 0 at x = 0 (u below about -745 when low = 0).
+            log_prior[np.isnan(log_jac) | np.isnan(log_prior)] = -np.inf
+        return rows
+
+    def transform(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`transform_rows` as ``(x, log_prior, log_jac)``, shapes (k, d), (k,), (k,)."""
+        rows = self.transform_rows(u)
+        d = self.d
+        return rows[:, d : 2 * d], rows[:, 2 * d + 1], rows[:, 2 * d]
+
+    def _map(self, u: np.ndarray, x: np.ndarray, log_jac: np.ndarray) -> None:
+        """Write ``x = to_user(u)`` (k, d) and ``log|det dx/du|`` (k,) into ``x`` and
+        ``log_jac``; ``u`` has shape (k, d)."""
+        x[:] = u
+        log_jac.fill(self._log_width_sum)
+        one = self._one
+        if one is not None:  # x = base +- exp(u); log|dx/du| = u
+            # exp(700) is finite: beyond it x (and with it the Jacobian) is held, so that
+            # a huge u gives a finite, very unlikely point rather than inf.
+            v = np.minimum(u[:, one], 700.0)
+            log_jac += np.add.reduce(v, axis=1)
+            np.exp(v, out=v)
+            v *= self._one_sign
+            v += self._one_base
+            x[:, one] = v
+        two = self._two
+        if two is not None:  # x = low + width s(u); log|dx/du| = log width + log s(u) + log s(-u)
+            ub = u[:, two]
+            log_s = special.log_expit(ub)
+            log_s += special.log_expit(-ub)
+            log_jac += np.add.reduce(log_s, axis=1)
+            v = special.expit(ub)
+            v *= self._two_width
+            v += self._two_low  # >= low: adding a number >= 0 rounds to no less
+            # Rounding may put the logistic image a hair above high; keep it on the support.
+            x[:, two] = np.minimum(v, self._two_high, out=v)
+
+    def _density(self, x: np.ndarray, out: np.ndarray) -> None:
+        """Write the normalised log prior density of rows ``x`` (k, d), taken to be on the
+        support, into ``out`` (k,)."""
+        out.fill(self._log_const)
+        g = self._gauss
+        if g is not None:  # -z^2 / 2, z = (x - mu) / sigma
+            z = x[:, g] - self._gauss_mu
+            z *= self._gauss_inv
+            z *= z
+            out -= 0.5 * np.add.reduce(z, axis=1)
+        ln = self._logn
+        if ln is not None:  # -z^2 / 2 - log x, z = (log x - mu) / sigma (d log x / dx = 1/x)
+            lx = np.log(x[:, ln])
+            z = lx - self._logn_mu
+            z *= self._logn_inv
+            z *= z
+            z *= 0.5
+            z += lx
+            out -= np.add.reduce(z, axis=1)
+
+    # ---------------------------------------------------------------- the parts
+    def logpdf(self, x: npt.ArrayLike) -> np.ndarray:
+        """Normalised log prior density of rows ``x``, shape (k, d) -> (k,); -inf outside
+        the support (NaN rows included)."""
+        x = np.atleast_2d(np.asarray(x, dtype=np.float64))
+        out = np.empty(x.shape[0])
+        with np.errstate(invalid="ignore", divide="ignore"):  # log x <= 0: outside anyway
+            self._density(x, out)
+        inside = ((x >= self.low) & (x <= self.high)).all(axis=1)
+        return np.where(inside & ~np.isnan(out), out, -np.inf)
+
     def to_user(self, u: npt.ArrayLike) -> np.ndarray:
-        """Map unconstrained rows ``u`` (k, d) to the user's units (k, d)."""
+        """Map unconstrained rows ``u`` (k, d) (or one row (d,)) to the user's units."""
         u = np.asarray(u, dtype=np.float64)
-        x = u.copy()
-        lo, up, both = self._idx_lower, self._idx_upper, self._idx_both
-        if lo.size:
-            x[..., lo] = self.low[lo] + np.exp(np.minimum(u[..., lo], 700.0))
-        if up.size:
-            x[..., up] = self.high[up] - np.exp(np.minimum(u[..., up], 700.0))
-        if both.size:
-            # Rounding may put the logistic image a hair outside; keep it on the support.
-            v = self.low[both] + self._width[both] * special.expit(u[..., both])
-            x[..., both] = np.minimum(np.maximum(v, self.low[both]), self.high[both])
-        return x
+        u2 = np.atleast_2d(u)
+        x = np.empty_like(u2)
+        self._map(u2, x, np.empty(u2.shape[0]))
+        return x.reshape(u.shape)
+
+    def log_jacobian(self, u: npt.ArrayLike) -> np.ndarray:
+        """``log|det dx/du|`` of :meth:`to_user` at rows ``u`` (k, d) -> (k,)."""
+        u = np.atleast_2d(np.asarray(u, dtype=np.float64))
+        log_jac = np.empty(u.shape[0])
+        self._map(u, np.empty_like(u), log_jac)
+        return log_jac
 
     def to_unconstrained(self, x: npt.ArrayLike) -> np.ndarray:
         """Inverse of :meth:`to_user`; rows on the boundary map to +-inf."""
@@ -207,199 +300,6 @@ class PriorSet:
             u = np.where(self._upper_only, np.log(self.high - x), u)
             u = np.where(self._both, np.log(x - self.low) - np.log(self.high - x), u)
         return u
-
-    def log_jacobian(self, u: npt.ArrayLike) -> np.ndarray:
-        """``log|det dx/du|`` of :meth:`to_user` at rows ``u`` (k, d) -> (k,)."""
-        u = np.atleast_2d(np.asarray(u, dtype=np.float64))
-        out = np.zeros(u.shape[0])
-        if self._idx_one.size:
-            out += u[:, self._idx_one].sum(axis=1)
-        both = self._idx_both
-        if both.size:
-            ub = u[:, both]
-            logistic = special.log_expit(ub) + special.log_expit(-ub)
-            out += logistic.sum(axis=1) + self._log_width_sum
-        return out
-
-    def _build_fused(self) -> None:
-        """Precompute what :meth:`transform` needs: the columns of each kind of map and
-        density (basic slices where they are contiguous: views, not copies) and the weights
-        that sum the per-column terms into the log prior and the log-Jacobian."""
-        d = self.d
-        one = np.flatnonzero(self._lower_only | self._upper_only)
-        both, gauss, logn = self._idx_both, self._idx_gauss, self._idx_lognormal
-        self._f_one = _columns(one)
-        self._f_one_base = np.where(self._lower_only, self.low, self.high)[one]
-        self._f_one_sign = np.where(self._lower_only, 1.0, -1.0)[one]
-        self._f_both = _columns(both)
-        self._f_both_low, self._f_both_high = self.low[both], self.high[both]
-        self._f_both_width = self._width[both]
-        self._f_gauss = _columns(gauss)
-        self._f_gauss_mu, self._f_gauss_inv = self.mu[gauss], 1.0 / self.sigma[gauss]
-        self._f_logn = _columns(logn)
-        self._f_logn_mu, self._f_logn_inv = self.mu[logn], 1.0 / self.sigma[logn]
-        # Term matrix, one row per parameter row: [u | 2 log s(u_both) | z_gauss^2 |
-        # z_lognormal^2 | log x_lognormal]; its product with `weights` gives the two sums.
-        sizes = (d, both.size, gauss.size, logn.size, logn.size)
-        ends = np.cumsum(sizes)
-        starts = ends - np.asarray(sizes)
-        self._t_both, self._t_gauss, self._t_lnz, self._t_lnx = (
-            slice(int(a), int(b)) for a, b in zip(starts[1:], ends[1:], strict=True)
-        )
-        w = np.zeros((int(ends[-1]), 2))  # column 0: log prior, column 1: log-Jacobian
-        w[one, 1] = 1.0  # log|dx/du| = u on a one-sided support
-        w[both, 1] = -1.0  # log s(u) + log s(-u) = 2 log s(u) - u
-        w[self._t_both, 1] = 2.0
-        w[self._t_gauss, 0] = -0.5
-        w[self._t_lnz, 0] = -0.5
-        w[self._t_lnx, 0] = -1.0  # the 1/x of the log-normal density
-        self._t_weights = w
-        self._t_const = np.array([self._log_const, self._log_width_sum])
-        # The same, column by column, for the scalar path of small batches:
-        # (map, offset, factor, upper bound, density, mu, 1 / sigma) with map 0 identity,
-        # 1 one-sided (x = offset + factor exp(u), factor +-1), 2 logistic; density 0
-        # uniform, 1 normal in x, 2 normal in log x.
-        cols = []
-        for j in range(d):
-            if self._lower_only[j]:
-                m, a, f = 1, float(self.low[j]), 1.0
-            elif self._upper_only[j]:
-                m, a, f = 1, float(self.high[j]), -1.0
-            elif self._both[j]:
-                m, a, f = 2, float(self.low[j]), float(self._width[j])
-            else:
-                m, a, f = 0, 0.0, 1.0
-            dens = 1 if self._is_normal[j] else 2 if self._is_lognormal[j] else 0
-            mu, inv = float(self.mu[j]), 1.0 / float(self.sigma[j])
-            cols.append((m, a, f, float(self.high[j]), dens, mu, inv))
-        self._s_cols = tuple(cols)
-
-    def transform(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """:meth:`to_user`, :meth:`logpdf` of the result and :meth:`log_jacobian` in one pass.
-
-        The samplers' inner loop: each kind of map and density is applied once to its
-        columns and one matrix product sums the per-column terms. Rows where a term is not
-        finite (extreme ``u``, NaN) are recomputed by the three separate methods, so the
-        result is theirs up to rounding. Extreme rows may raise numpy's floating-point
-        warnings (the sampler calls this under ``np.errstate(all="ignore")``).
-
-        Parameters
-        ----------
-        u : ndarray, shape (k, d)
-            Rows in the unconstrained space (float64).
-
-        Returns
-        -------
-        x : ndarray, shape (k, d)
-            ``to_user(u)``.
-        log_prior : ndarray, shape (k,)
-            ``logpdf(x)``.
-        log_jac : ndarray, shape (k,)
-            ``log_jacobian(u)``.
-        """
-        rows = self.transform_rows(u)
-        d = self.d
-        return rows[:, d : 2 * d], rows[:, 2 * d + 1], rows[:, 2 * d]
-
-    def transform_rows(self, u: np.ndarray) -> np.ndarray:
-        """:meth:`transform` laid out as the samplers keep their chains: one array of
-        shape (k, 2 d + 2) with rows ``[u | x | log_jac | log_prior]``."""
-        d = self.d
-        if u.size <= _SMALL:
-            lists = self.rows_small(u)
-            if lists is not None:
-                return np.array(lists)
-        x, log_prior, log_jac = self._fused(u)
-        rows = np.empty((len(u), 2 * d + 2))
-        rows[:, :d] = u
-        rows[:, d : 2 * d] = x
-        rows[:, 2 * d] = log_jac
-        rows[:, 2 * d + 1] = log_prior
-        return rows
-
-    def _fused(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The numpy path of :meth:`transform`."""
-        t = np.empty((u.shape[0], self._t_weights.shape[0]))
-        t[:, : self.d] = u
-        x = u.copy()
-        one = self._f_one
-        if one is not None:
-            e = np.exp(np.minimum(u[:, one], 700.0))
-            x[:, one] = self._f_one_base + self._f_one_sign * e
-        both = self._f_both
-        if both is not None:
-            ub = u[:, both]
-            v = self._f_both_width * special.expit(ub)
-            v += self._f_both_low  # >= low: adding a number >= 0 rounds to no less
-            # Rounding may put the logistic image a hair above high; keep it on the support.
-            x[:, both] = np.minimum(v, self._f_both_high, out=v)
-            special.log_expit(ub, out=t[:, self._t_both])
-        g = self._f_gauss
-        if g is not None:
-            z = (x[:, g] - self._f_gauss_mu) * self._f_gauss_inv
-            np.multiply(z, z, out=t[:, self._t_gauss])
-        ln = self._f_logn
-        if ln is not None:
-            lx = np.log(x[:, ln], out=t[:, self._t_lnx])
-            z = (lx - self._f_logn_mu) * self._f_logn_inv
-            np.multiply(z, z, out=t[:, self._t_lnz])
-        if not math.isfinite(t.sum()):  # extreme u or NaN: the exact, separate path
-            x = self.to_user(u)
-            return x, self.logpdf(x), self.log_jacobian(u)
-        r = np.dot(t, self._t_weights)
-        r += self._t_const
-        return x, r[:, 0], r[:, 1]
-
-    def rows_small(self, u: np.ndarray) -> list[list[float]] | None:
-        """:meth:`transform_rows` of a few rows in Python floats, as lists (None: leave it
-        to numpy). Meant for batches of up to ``_SMALL`` values.
-
-        For a handful of values a numpy call costs far more than the arithmetic, and more
-        again when a slow model has pushed numpy's code out of the CPU caches between
-        steps; here each value takes a few float operations. The formulas are the numpy
-        path's (scipy's ``expit`` is ``1 / (1 + exp(-u))``; ``log_expit`` is computed
-        the way scipy does for either sign), so the results agree to rounding.
-        """
-        exp, log1p, log = math.exp, math.log1p, math.log
-        cols = self._s_cols
-        c_prior, c_jac = self._log_const, self._log_width_sum
-        rows = []
-        total = 0.0
-        for row in u.tolist():
-            xr = []
-            lp, lj = c_prior, c_jac
-            for v, (m, a, f, hi, dens, mu, inv) in zip(row, cols, strict=True):
-                if m == 2:
-                    if not v > -700.0:  # exp(-v) would overflow (or NaN): numpy path
-                        return None
-                    e = exp(-v)
-                    xv = a + f * (1.0 / (1.0 + e))
-                    if xv > hi:  # rounding a hair above the upper bound
-                        xv = hi
-                    lj += 2.0 * (-log1p(e) if v >= 0.0 else v - log1p(exp(v))) - v
-                elif m == 1:
-                    xv = a + f * exp(v if v < 700.0 else 700.0)
-                    lj += v
-                else:
-                    xv = v
-                if dens == 1:
-                    z = (xv - mu) * inv
-                    lp -= 0.5 * z * z
-                elif dens == 2:
-                    if not xv > 0.0:  # log 0: numpy path
-                        return None
-                    lx = log(xv)
-                    z = (lx - mu) * inv
-                    lp -= 0.5 * z * z + lx
-                xr.append(xv)
-            total += lp + lj
-            row += xr
-            row.append(lj)
-            row.append(lp)
-            rows.append(row)
-        if not math.isfinite(total):
-            return None
-        return rows
 
     # ---------------------------------------------------------------- draws
     def ppf(self, q: npt.ArrayLike) -> np.ndarray:
