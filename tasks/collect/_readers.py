@@ -34,11 +34,19 @@ from typing import Any
 
 import numpy as np
 
+from winnow.tasks.config import (
+    CsvReader,
+    FunctionReader,
+    Hdf5Reader,
+    JsonReader,
+    ReaderOptions,
+    RegexReader,
+    check_qoi_spec,
+    parse_reader,
+)
 from winnow.tasks.records import QoIValue
 
 __all__ = ["QoIReadError", "read_axis", "read_qoi", "validate_qoi_spec"]
-
-_READER_KINDS = ("json", "csv", "hdf5", "regex", "function")
 
 
 class QoIReadError(Exception):
@@ -51,110 +59,9 @@ class QoIReadError(Exception):
 
 
 # --------------------------------------------------------------------------------------------
-# spec validation (configuration errors raise)
+# spec validation (configuration errors raise); the readers' options are the config models
 # --------------------------------------------------------------------------------------------
-def _require(options: Mapping[str, Any], key: str, where: str, types: tuple[type, ...]) -> Any:
-    if key not in options:
-        raise ValueError(f"{where}: missing option {key!r}")
-    value = options[key]
-    if not isinstance(value, types) or isinstance(value, bool):
-        names = " or ".join(t.__name__ for t in types)
-        raise TypeError(f"{where}.{key}: expected {names}, got {value!r}")
-    return value
-
-
-def _check_keys(options: Mapping[str, Any], allowed: set[str], where: str) -> None:
-    extra = sorted(set(options) - allowed)
-    if extra:
-        raise ValueError(f"{where}: unknown option(s) {extra}; valid options: {sorted(allowed)}")
-
-
-def _validate_row_rule(row: Any, where: str) -> None:
-    if isinstance(row, str):
-        if row not in ("first", "last", "all"):
-            raise ValueError(
-                f"{where}.row: expected 'first', 'last', 'all', an int or "
-                f"{{'where': {{column: value}}}}, got {row!r}"
-            )
-    elif isinstance(row, int) and not isinstance(row, bool):
-        pass
-    elif isinstance(row, Mapping):
-        _check_keys(row, {"where"}, f"{where}.row")
-        cond = row.get("where")
-        if not isinstance(cond, Mapping) or len(cond) != 1:
-            raise ValueError(
-                f"{where}.row.where: expected one {{column: value}} pair, got {cond!r}"
-            )
-        (value,) = cond.values()
-        if isinstance(value, bool) or not isinstance(value, int | float | str):
-            raise TypeError(f"{where}.row.where: expected a number or string value, got {value!r}")
-    else:
-        raise TypeError(
-            f"{where}.row: expected 'first', 'last', 'all', an int or "
-            f"{{'where': {{column: value}}}}, got {row!r}"
-        )
-
-
-def _validate_reader(reader: Any, where: str) -> tuple[str, Any]:
-    if not isinstance(reader, Mapping) or len(reader) != 1:
-        raise ValueError(
-            f"{where}: expected exactly one reader among {list(_READER_KINDS)}, got {reader!r}"
-        )
-    ((kind, options),) = reader.items()
-    if kind not in _READER_KINDS:
-        raise ValueError(f"{where}: unknown reader {kind!r}; valid readers: {list(_READER_KINDS)}")
-    w = f"{where}.{kind}"
-    if kind == "function":
-        _resolve_function(options, w)
-        return kind, options
-    if not isinstance(options, Mapping):
-        raise TypeError(f"{w}: expected a mapping of options, got {options!r}")
-    _require(options, "file", w, (str,))
-    if kind == "json":
-        _check_keys(options, {"file", "key"}, w)
-        key = _require(options, "key", w, (str, list))
-        if isinstance(key, str) and not key:
-            raise ValueError(f"{w}.key: expected a non-empty key path, got ''")
-    elif kind == "csv":
-        _check_keys(options, {"file", "column", "row", "delimiter"}, w)
-        _require(options, "column", w, (str, int))
-        _validate_row_rule(options.get("row", "last"), w)
-        delim = options.get("delimiter", ",")
-        if not isinstance(delim, str) or len(delim) != 1:
-            raise ValueError(f"{w}.delimiter: expected one character, got {delim!r}")
-    elif kind == "hdf5":
-        _check_keys(options, {"file", "dataset", "index"}, w)
-        _require(options, "dataset", w, (str,))
-        index = options.get("index")
-        if index is not None and (isinstance(index, bool) or not isinstance(index, int | list)):
-            raise TypeError(f"{w}.index: expected an int or a list of ints, got {index!r}")
-    elif kind == "regex":
-        _check_keys(options, {"file", "pattern", "group", "occurrence"}, w)
-        pattern = _require(options, "pattern", w, (str,))
-        try:
-            compiled = re.compile(pattern)
-        except re.error as exc:
-            raise ValueError(f"{w}.pattern: not a valid regular expression ({exc})") from exc
-        group = options.get("group", 1)
-        if isinstance(group, bool) or not isinstance(group, int | str):
-            raise TypeError(f"{w}.group: expected a group number or name, got {group!r}")
-        if isinstance(group, int) and group > compiled.groups:
-            raise ValueError(f"{w}.group: pattern has {compiled.groups} group(s), got {group}")
-        if isinstance(group, str) and group not in compiled.groupindex:
-            raise ValueError(f"{w}.group: pattern has no group named {group!r}")
-        occ = options.get("occurrence", "last")
-        if not (
-            occ in ("first", "last", "all") or (isinstance(occ, int) and not isinstance(occ, bool))
-        ):
-            raise ValueError(
-                f"{w}.occurrence: expected 'first', 'last', 'all' or an int, got {occ!r}"
-            )
-    return kind, options
-
-
-def _resolve_function(target: Any, where: str) -> Callable[[Path], Any]:
-    if not isinstance(target, str) or target.count(":") != 1:
-        raise ValueError(f"{where}: expected 'module:function', got {target!r}")
+def _resolve_function(target: str, where: str) -> Callable[[Path], Any]:
     module_name, func_name = target.split(":")
     try:
         module = importlib.import_module(module_name)
@@ -166,8 +73,19 @@ def _resolve_function(target: Any, where: str) -> Callable[[Path], Any]:
     return func
 
 
+def _parsed(reader: Any, where: str) -> ReaderOptions:
+    """The validated options of one reader; a ``function`` reader's target is imported."""
+    kind, options = parse_reader(reader, where)
+    if isinstance(options, FunctionReader):
+        _resolve_function(options.root, f"{where}.{kind}")
+    return options
+
+
 def validate_qoi_spec(spec: Mapping[str, Any]) -> dict[str, Any]:
     """Check a QoI spec and return it as a plain dict; raise on a configuration error.
+
+    The options of each reader are those of its model in
+    :data:`winnow.tasks.config.READERS`; a ``function`` reader's module is imported here.
 
     Parameters
     ----------
@@ -180,45 +98,13 @@ def validate_qoi_spec(spec: Mapping[str, Any]) -> dict[str, Any]:
     ValueError, TypeError
         Naming the option, the expected and the actual value.
     """
-    if not isinstance(spec, Mapping):
-        raise TypeError(f"spec: expected a mapping, got {type(spec).__name__}")
-    _check_keys(
-        spec, {"name", "units", "description", "reader", "axis", "cheap_qoi", "thresholds"}, "spec"
-    )
-    name = _require(spec, "name", "spec", (str,))
-    if not name:
-        raise ValueError("spec.name: expected a non-empty name, got ''")
-    units = spec.get("units", "")
-    if not isinstance(units, str):
-        raise TypeError(f"spec.units: expected str, got {units!r}")
-    if "reader" not in spec:
-        raise ValueError(f"spec {name!r}: missing option 'reader'")
-    _validate_reader(spec["reader"], f"qoi {name!r}.reader")
-    axis = spec.get("axis")
-    if axis is not None:
-        w = f"qoi {name!r}.axis"
-        if not isinstance(axis, Mapping):
-            raise TypeError(f"{w}: expected a mapping, got {axis!r}")
-        _check_keys(axis, {"name", "units", "values", "reader"}, w)
-        _require(axis, "name", w, (str,))
-        if not isinstance(axis.get("units", ""), str):
-            raise TypeError(f"{w}.units: expected str, got {axis.get('units')!r}")
-        if ("values" in axis) == ("reader" in axis):
-            raise ValueError(f"{w}: give exactly one of 'values' or 'reader'")
-        if "values" in axis:
-            vals = np.asarray(axis["values"], dtype=object)
-            try:
-                arr = np.asarray(axis["values"], dtype=np.float64)
-            except (TypeError, ValueError) as exc:
-                raise TypeError(f"{w}.values: expected a list of numbers, got {vals!r}") from exc
-            if arr.ndim != 1 or arr.size == 0 or not np.all(np.isfinite(arr)):
-                raise ValueError(
-                    f"{w}.values: expected a non-empty 1-D list of finite numbers, "
-                    f"got shape {arr.shape}"
-                )
-        else:
-            _validate_reader(axis["reader"], f"{w}.reader")
-    return dict(spec)
+    checked = check_qoi_spec(spec)
+    name = checked["name"]
+    _parsed(checked["reader"], f"qoi {name!r}.reader")
+    axis = checked.get("axis")
+    if axis is not None and axis.get("reader") is not None:
+        _parsed(axis["reader"], f"qoi {name!r}.axis.reader")
+    return checked
 
 
 # --------------------------------------------------------------------------------------------
@@ -255,31 +141,29 @@ def _to_float_array(raw: Any, where: str) -> np.ndarray:
     return arr
 
 
-def _read_json(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
-    text = _open_text(run_dir, opt["file"])
+def _read_json(run_dir: Path, opt: JsonReader) -> np.ndarray:
+    text = _open_text(run_dir, opt.file)
     try:
         doc = json.loads(text)
     except json.JSONDecodeError as exc:
-        raise QoIReadError("unparsable", f"{opt['file']!r} is not valid JSON ({exc})") from exc
-    key = opt["key"]
+        raise QoIReadError("unparsable", f"{opt.file!r} is not valid JSON ({exc})") from exc
+    key = opt.key
     parts = key.split(".") if isinstance(key, str) else [str(p) for p in key]
     node: Any = doc
     for depth, part in enumerate(parts):
         path = ".".join(parts[: depth + 1])
         if isinstance(node, Mapping):
             if part not in node:
-                raise QoIReadError("missing", f"key {path!r} not found in {opt['file']!r}")
+                raise QoIReadError("missing", f"key {path!r} not found in {opt.file!r}")
             node = node[part]
         elif isinstance(node, list):
             try:
                 node = node[int(part)]
             except (ValueError, IndexError) as exc:
-                raise QoIReadError(
-                    "missing", f"index {path!r} not found in {opt['file']!r}"
-                ) from exc
+                raise QoIReadError("missing", f"index {path!r} not found in {opt.file!r}") from exc
         else:
-            raise QoIReadError("missing", f"key {path!r} not found in {opt['file']!r}")
-    return _to_float_array(node, f"{opt['file']}:{'.'.join(parts)}")
+            raise QoIReadError("missing", f"key {path!r} not found in {opt.file!r}")
+    return _to_float_array(node, f"{opt.file}:{'.'.join(parts)}")
 
 
 def _cell(text: str, where: str) -> float:
@@ -289,12 +173,12 @@ def _cell(text: str, where: str) -> float:
         raise QoIReadError("unparsable", f"{where}: {text.strip()[:40]!r} is not a number") from exc
 
 
-def _read_csv(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
-    file = opt["file"]
+def _read_csv(run_dir: Path, opt: CsvReader) -> np.ndarray:
+    file = opt.file
     text = _open_text(run_dir, file)
     rows = [
         r
-        for r in csv.reader(text.splitlines(), delimiter=opt.get("delimiter", ","))
+        for r in csv.reader(text.splitlines(), delimiter=opt.delimiter)
         if r and any(c.strip() for c in r)
     ]
     if not rows:
@@ -311,10 +195,10 @@ def _read_csv(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
             raise QoIReadError("missing", f"column {col!r} not in {file!r} (columns: {header})")
         return header.index(col)
 
-    j = column_index(opt["column"])
+    j = column_index(opt.column)
     if not body:
         raise QoIReadError("missing", f"{file!r} has a header but no data rows")
-    row = opt.get("row", "last")
+    row = opt.row
     if row == "all":
         picked = list(range(len(body)))
     elif row == "first":
@@ -326,7 +210,7 @@ def _read_csv(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
             raise QoIReadError("missing", f"{file!r} has {len(body)} data rows, asked row {row}")
         picked = [row % len(body)]
     else:
-        ((wcol, wval),) = row["where"].items()
+        ((wcol, wval),) = row.where.items()
         k = column_index(wcol)
         picked = []
         for i, r in enumerate(body):
@@ -357,32 +241,30 @@ def _read_csv(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
     return np.asarray(values if row == "all" else values[0], dtype=np.float64)
 
 
-def _read_hdf5(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
+def _read_hdf5(run_dir: Path, opt: Hdf5Reader) -> np.ndarray:
     import h5py  # lazy: keeps the module import light
 
-    path = run_dir / opt["file"]
+    path = run_dir / opt.file
     if not path.is_file():
-        raise QoIReadError("missing", f"output file {opt['file']!r} not found in {run_dir}")
+        raise QoIReadError("missing", f"output file {opt.file!r} not found in {run_dir}")
     try:
         with h5py.File(path, "r") as h5:
-            ds = h5.get(opt["dataset"])
+            ds = h5.get(opt.dataset)
             if ds is None or not isinstance(ds, h5py.Dataset):
-                raise QoIReadError(
-                    "missing", f"dataset {opt['dataset']!r} not found in {opt['file']!r}"
-                )
+                raise QoIReadError("missing", f"dataset {opt.dataset!r} not found in {opt.file!r}")
             data = ds[()]
     except OSError as exc:
         raise QoIReadError(
-            "unparsable", f"{opt['file']!r} is not a readable HDF5 file ({exc})"
+            "unparsable", f"{opt.file!r} is not a readable HDF5 file ({exc})"
         ) from exc
-    where = f"{opt['file']}:{opt['dataset']}"
+    where = f"{opt.file}:{opt.dataset}"
     try:
         arr = np.asarray(data, dtype=np.float64)
     except (TypeError, ValueError) as exc:
         raise QoIReadError(
             "unparsable", f"{where}: not numeric (dtype {np.asarray(data).dtype})"
         ) from exc
-    index = opt.get("index")
+    index = opt.index
     if index is not None:
         try:
             arr = arr[tuple(index) if isinstance(index, list) else index]
@@ -393,15 +275,15 @@ def _read_hdf5(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
     return _to_float_array(arr, where)
 
 
-def _read_regex(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
-    text = _open_text(run_dir, opt["file"])
-    pattern = re.compile(opt["pattern"])
-    group = opt.get("group", 1)
+def _read_regex(run_dir: Path, opt: RegexReader) -> np.ndarray:
+    text = _open_text(run_dir, opt.file)
+    pattern = re.compile(opt.pattern)
+    group = opt.group
     hits = [m.group(group) for m in pattern.finditer(text)]
     if not hits:
-        raise QoIReadError("missing", f"pattern {opt['pattern']!r} not found in {opt['file']!r}")
-    occ = opt.get("occurrence", "last")
-    where = f"{opt['file']}: pattern {opt['pattern']!r}"
+        raise QoIReadError("missing", f"pattern {opt.pattern!r} not found in {opt.file!r}")
+    occ = opt.occurrence
+    where = f"{opt.file}: pattern {opt.pattern!r}"
     if occ == "all":
         return np.asarray([_cell(h or "", where) for h in hits], dtype=np.float64)
     if occ == "first":
@@ -419,7 +301,8 @@ def _read_regex(run_dir: Path, opt: Mapping[str, Any]) -> np.ndarray:
     return np.asarray(_cell(chosen, where), dtype=np.float64)
 
 
-def _read_function(run_dir: Path, target: str, name: str) -> np.ndarray:
+def _read_function(run_dir: Path, opt: FunctionReader, name: str) -> np.ndarray:
+    target = opt.root
     func = _resolve_function(target, "reader.function")
     try:
         result = func(run_dir)
@@ -438,17 +321,18 @@ def _read_function(run_dir: Path, target: str, name: str) -> np.ndarray:
 
 
 def _read_with(run_dir: Path, reader: Mapping[str, Any], name: str) -> np.ndarray:
-    ((kind, opt),) = reader.items()
-    if kind == "function":
+    _, opt = parse_reader(reader, "reader")
+    if isinstance(opt, FunctionReader):
         return _read_function(run_dir, opt, name)
-    return _DISPATCH[kind](run_dir, opt)
+    return _READ[type(opt)](run_dir, opt)
 
 
-_DISPATCH: dict[str, Callable[[Path, Mapping[str, Any]], np.ndarray]] = {
-    "json": _read_json,
-    "csv": _read_csv,
-    "hdf5": _read_hdf5,
-    "regex": _read_regex,
+# the read function of each reader's options model (the names are those of config.READERS)
+_READ: dict[type, Callable[[Path, Any], np.ndarray]] = {
+    JsonReader: _read_json,
+    CsvReader: _read_csv,
+    Hdf5Reader: _read_hdf5,
+    RegexReader: _read_regex,
 }
 
 

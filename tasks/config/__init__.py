@@ -11,7 +11,21 @@ names the file, the field path and what was expected.
 from __future__ import annotations
 
 from ._base import ConfigError
-from ._collect import CollectSettings, QoISettings
+from ._collect import (
+    READERS,
+    AxisSpec,
+    CollectSettings,
+    CsvReader,
+    FunctionReader,
+    Hdf5Reader,
+    JsonReader,
+    QoISettings,
+    ReaderOptions,
+    RegexReader,
+    RowWhere,
+    check_qoi_spec,
+    parse_reader,
+)
 from ._dispatch import (
     CONFIG_DIR_PLACEHOLDER,
     BatchRunner,
@@ -44,32 +58,43 @@ from ._study import StudyConfig, StudySettings
 from ._thin import ThinSettings
 
 __all__ = [
+    "READERS",
+    "AxisSpec",
     "BatchRunner",
     "BatchSettings",
     "CONFIG_DIR_PLACEHOLDER",
     "CheckSettings",
     "CollectSettings",
     "ConfigError",
+    "CsvReader",
     "DaskRunner",
     "DaskSettings",
     "DispatchSettings",
+    "FunctionReader",
+    "Hdf5Reader",
     "ImportSettings",
+    "JsonReader",
     "LocalClusterSettings",
     "ModelSettings",
     "ObservationSettings",
     "Parameter",
     "Prior",
     "QoISettings",
+    "ReaderOptions",
+    "RegexReader",
+    "RowWhere",
     "SampleSettings",
     "StudyConfig",
     "StudySettings",
     "ThinSettings",
+    "check_qoi_spec",
     "config_hash",
     "config_schema",
     "format_validation_error",
     "importable",
     "load_config",
     "model_search_path",
+    "parse_reader",
     "parse_config",
     "resolve",
 ]
