@@ -27,7 +27,7 @@ CHILD = textwrap.dedent(
     import os, sys, time
     from pathlib import Path
     import numpy as np
-    from winnow.tasks import _store
+    from winnow.tasks.store import _core as _store
     from winnow.tasks.records import Chain
     from winnow.tasks.store import RunStore
 
