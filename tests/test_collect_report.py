@@ -35,7 +35,11 @@ from winnow.tasks.collect import (
     report_markdown,
     report_tables,
 )
-from winnow.tasks.collect import _report as R
+from winnow.tasks.collect import _report_answer as RA
+from winnow.tasks.collect import _report_checks as RC
+from winnow.tasks.collect import _report_sections as RS
+from winnow.tasks.collect import _report_tables as RTab
+from winnow.tasks.collect import _report_text as RT
 from winnow.tasks.collect._report_plots import (
     cdf_curve,
     costly_cheap_figure,
@@ -227,7 +231,7 @@ def test_caution_is_general_and_near_the_top(html_text):
     box = html_text[caution : html_text.index("</div>", caution)]
     assert "licensed professional" in box and "local codes and standards" in box
     assert "engineering decisions" in box
-    assert "water supply" not in R.CAUTION and "water supply" not in html_text
+    assert "water supply" not in RT.CAUTION and "water supply" not in html_text
     assert "This study:" not in box  # the config gives no study.caution
 
 
@@ -250,8 +254,8 @@ def test_aquifer_demo_config_carries_its_own_caution():
     config = load_config(path)[0]
     assert "water supply" in config.study.caution
     d = ReportData(study="aquifer-demo", config_text=path.read_text())
-    general, own = R.caution_text(d)
-    assert general == R.CAUTION and own == config.study.caution
+    general, own = RC.caution_text(d)
+    assert general == RT.CAUTION and own == config.study.caution
 
 
 def test_config_caution_defaults_to_empty():
@@ -290,7 +294,7 @@ def test_answer_states_estimate_interval_level_and_what_for(data, html_text):
 def test_answer_names_the_estimator_why_and_the_candidates(data):
     est = data.estimates[0]
     c = est.headline["components"][0]
-    a = R._answer(data, est)
+    a = RA._answer(data, est)
     assert a["estimator"].startswith(f"Estimator: {c['rule']} (")
     for rule, cand in c["candidates"].items():
         assert f"{rule} {format_number(cand['se'])} m" in a["estimator"]
@@ -312,7 +316,7 @@ def test_why_an_estimator_was_chosen(rule, ses, expected):
             r: {"se": s, "estimate": 1.0, "coefficient": 0.0, "dof": 7} for r, s in ses.items()
         },
     }
-    why = R._why(comp, "m")
+    why = RA._why(comp, "m")
     assert expected in why
     if rule == "discrepancy":  # the numbers the choice rests on
         assert "it states 0.4 m, less than 47% of the weighted mean's 1 m" in why
@@ -357,7 +361,7 @@ def test_one_weighted_point_is_not_estimable_never_zero(tmp_path):
     )
     assert np.isnan(est.uncertainty["thinning_se"])  # the error model's own verdict
     d.estimates = [est]
-    a = R._answer(d, est)
+    a = RA._answer(d, est)
     assert "not estimable" in a["text"] and "[" not in a["text"]
     assert a["unreliable"] and any("not estimable" in f for f in a["flags"])
     row = report_tables(d)["estimates"][0]
@@ -373,7 +377,7 @@ def test_estimate_without_error_model_says_so(tmp_path):
     est = estimate_qoi(np.array([1.0, 2.0, 3.0]), np.ones(3), name="plain", units="m")
     assert est.headline is None
     d.estimates = [est]
-    a = R._answer(d, est)
+    a = RA._answer(d, est)
     assert "weighted mean of the runs 2 m; no interval is stated" in a["text"]
     assert "no interval is stated" in _text(build_report(d, tmp_path).read_text())
 
@@ -383,7 +387,7 @@ def test_vector_answer_points_at_its_widest_interval(data):
     h = est.headline
     width = np.asarray(h["interval_high"]) - np.asarray(h["interval_low"])
     j = int(np.argmax(width))
-    a = R._answer(data, est)
+    a = RA._answer(data, est)
     assert f"Widest at time = {format_number(AXIS[j])} d: " in a["text"]
     assert (
         f"[{format_number(h['interval_low'][j])},\u00a0{format_number(h['interval_high'][j])}] m"
@@ -395,7 +399,7 @@ def test_vector_answer_points_at_its_widest_interval(data):
 # breakdown, estimators, cheap check, quantiles
 # --------------------------------------------------------------------------------------------
 def test_breakdown_values_match_the_error_model(data):
-    rows = R.report_tables(data)["uncertainty"]
+    rows = RTab.report_tables(data)["uncertainty"]
     est = data.estimates[0]
     c = est.headline["components"][0]
     got = {r["item"]: r for r in rows if r["quantity"] == "drawdown_spring"}
@@ -507,7 +511,7 @@ def test_numbers_share_one_format():
     assert format_number(0.000123456) == "0.0001235"
     assert format_number(2.0) == "2"
     assert format_number(float("nan")) == "n/a" and format_number(None) == "n/a"
-    assert R._fmt(np.float64(3.14159)) == "3.142" and R._fmt(7) == "7"
+    assert RT._fmt(np.float64(3.14159)) == "3.142" and RT._fmt(7) == "7"
 
 
 def test_section_links_reach_every_section(html_text):
@@ -524,7 +528,7 @@ def test_section_links_reach_every_section(html_text):
 def test_forecast_sentence_and_table(data):
     est = data.estimates[0]
     fc = est.headline["forecast"]
-    sentence = R._forecast_sentence(data, est)
+    sentence = RA._forecast_sentence(data, est)
     assert sentence.startswith(
         f"10 more runs would bring the stated thinning error (sd) of drawdown_spring from "
         f"{format_number(fc['now'])} m to {format_number(fc['extra_points'][10])} m "
@@ -542,12 +546,12 @@ def test_forecast_drop_from_the_change_of_weights_is_pointed_out(data):
         data.estimates[0],
         forecast={"component": 0, "now": 0.1, "extra_points": {5: 0.01, 10: 0.009}},
     )
-    assert "Read it with care" in R._forecast_sentence(data, est)
+    assert "Read it with care" in RA._forecast_sentence(data, est)
     est = _with_headline(
         data.estimates[0],
         forecast={"component": 0, "now": 0.1, "extra_points": {5: 0.08, 10: 0.07}},
     )
-    s = R._forecast_sentence(data, est)
+    s = RA._forecast_sentence(data, est)
     assert "Read it with care" not in s and "from 0.1 m to 0.07 m" in s
 
 
@@ -565,7 +569,7 @@ def test_cdf_curve_is_the_report_quantile_function():
 def test_quantile_markers_sit_on_the_drawn_cdf_and_legend_is_outside(data):
     pytest.importorskip("matplotlib")
     est = data.estimates[0]
-    values, weights, _ = R._qoi_values_for_plot(data, est)
+    values, weights, _ = RS._qoi_values_for_plot(data, est)
     fig = qoi_figure(
         values,
         weights,
@@ -601,11 +605,11 @@ def test_costly_cheap_scatter_shows_the_points_used(data, tmp_path):
     d = make_data()
     d.cheap_at_points = {"drawdown_spring": cheap_chain[sel.indices]}
     est = d.estimates[0]
-    cheap = R._cheap_at_points(d, est)
+    cheap = RS._cheap_at_points(d, est)
     pos = est.details["positions_used"]
     assert FAILED not in pos and cheap.shape == (M - 1,)
     np.testing.assert_array_equal(cheap, cheap_chain[sel.indices][pos])
-    values, weights, _ = R._qoi_values_for_plot(d, est)
+    values, weights, _ = RS._qoi_values_for_plot(d, est)
     fig = costly_cheap_figure(cheap, values, weights, name=est.name, units="m")
     ax = fig.axes[0]
     np.testing.assert_allclose(ax.collections[0].get_offsets(), np.column_stack([cheap, values]))
@@ -666,7 +670,7 @@ def test_trace_rows_follow_the_stored_chains(tmp_path):
         rev = wr.new_revision("study:\n  name: s\n")
         wr.write_chain(rev, chain)
     loaded = load_report_data(store, max_plot_rows=97)
-    ci, di, note = R._trace_rows(loaded)
+    ci, di, note = RS._trace_rows(loaded)
     # where each plotted row sits in the stored chain, found by its values
     where = [
         int(np.flatnonzero((chain.samples == row).all(axis=1))[0]) for row in loaded.chain_samples
@@ -691,7 +695,7 @@ def _brute_mmd(target: np.ndarray, pts: np.ndarray, w: np.ndarray, h: float) -> 
 
 
 def test_selection_mmd_beside_random_subsets(data, html_text):
-    scale = R.random_subset_mmd(data)
+    scale = RC.random_subset_mmd(data)
     sel, x = data.selection, data.chain_samples
     z = (x - x.mean(0)) / x.std(0)  # no standardisation recorded: the chain's own
     zp = (sel.points - x.mean(0)) / x.std(0)
@@ -720,7 +724,7 @@ def test_selection_mmd_scale_read_from_the_thin_stage_when_recorded():
         "rows": 100,
     }
     d.selection = dataclasses.replace(d.selection, report={"random_subset_mmd": rec})
-    scale = R.random_subset_mmd(d)
+    scale = RC.random_subset_mmd(d)
     assert scale["random_mean"] == 0.2 and scale["basis"] == "recorded by the thin stage"
 
 
@@ -738,10 +742,10 @@ def test_selection_mmd_scale_read_from_the_thin_stage_when_recorded():
 )
 def test_weights_warning_rule(weights, flagged, why):
     w = np.asarray(weights, dtype=float)
-    got = R.weights_warning(w)
+    got = RC.weights_warning(w)
     assert (got is not None) == flagged
     if flagged:
-        assert why in got and R.WEIGHTS_RULE in got
+        assert why in got and RT.WEIGHTS_RULE in got
 
 
 def _fake_estimate(**details) -> QoIEstimate:
@@ -772,18 +776,18 @@ def _fake_estimate(**details) -> QoIEstimate:
     ],
 )
 def test_representation_warning_rule(details, warns, why):
-    got = R.representation_warning(_fake_estimate(**details))
+    got = RC.representation_warning(_fake_estimate(**details))
     assert (got is not None) == warns
     if warns:
         assert why in got
-        assert "winnow rerun --replace" in got and R.REPRESENTATION_RULE in got
+        assert "winnow rerun --replace" in got and RT.REPRESENTATION_RULE in got
 
 
 def test_representation_warning_in_the_answer(data, html_text):
     est = data.estimates[0]
     d = est.details
     assert d["mmd_after"] > 2 * d["mmd_before"]  # 0.08 > 2 x 0.035: the rule warns
-    warning = R.representation_warning(est)
+    warning = RC.representation_warning(est)
     assert html_lib.escape(warning, quote=True) in html_text
     assert html_text.index('class="warn"') < html_text.index('id="study"')
     rows = report_tables(data)["weights"]
@@ -791,7 +795,7 @@ def test_representation_warning_in_the_answer(data, html_text):
 
 
 def test_representation_rule_is_exported():
-    assert "representation_warning" in R.__all__
+    assert "representation_warning" in RC.__all__
 
 
 # --------------------------------------------------------------------------------------------
@@ -870,7 +874,7 @@ def test_markdown_has_the_same_content(data):
         assert section in md, section
     assert "| point | run id | chain row | weight |" in md
     assert "| time (d) | estimate (m) | 95 % interval for the posterior expectation (m) |" in md
-    assert R._forecast_sentence(data, data.estimates[0]) in md
+    assert RA._forecast_sentence(data, data.estimates[0]) in md
 
 
 def test_html_shows_the_records(data, html_text):
@@ -986,7 +990,7 @@ def test_report_command_bad_store_writes_nothing(cli_app, tmp_path):
 def test_report_command_writes_report(cli_app, tmp_path, monkeypatch):
     # The store loader belongs to the run-store module; a stand-in returning the sample data
     # exercises the command alone.
-    from winnow.tasks.store import _api as store_module
+    import winnow.tasks.store as store_module
 
     runner, app = cli_app
     store = tmp_path / "study.h5"
@@ -1049,7 +1053,7 @@ def test_report_command_on_a_real_store(cli_app, tmp_path):
     res = runner.invoke(app, ["report", str(store), "--out", str(out)])
     assert res.exit_code == 0, res.output
     text = (out / "report.html").read_text()
-    answer = R._answer(d, d.estimates[0])["text"]
+    answer = RA._answer(d, d.estimates[0])["text"]
     assert html_lib.escape(answer, quote=True) in text and f"p{FAILED:03d}" in text
     assert "Stored caution." in text
     res = runner.invoke(

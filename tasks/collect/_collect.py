@@ -37,14 +37,11 @@ from ._estimates import (
     weighted_quantile,
 )
 from ._readers import QoIReadError, read_axis, read_qoi, validate_qoi_spec
-from ._report import CAUTION as GENERAL_CAUTION
-from ._report import (
-    build_report,
-    export_csv,
-    report_markdown,
-    report_tables,
-    representation_warning,
-)
+from ._report_checks import representation_warning
+from ._report_csv import export_csv
+from ._report_page import build_report, report_markdown
+from ._report_tables import report_tables
+from ._report_text import CAUTION as GENERAL_CAUTION
 from ._uncertainty import ChainGeometry, fit_error_model
 
 __all__ = [
