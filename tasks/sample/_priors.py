@@ -39,6 +39,7 @@ _ALIASES = {"truncated_normal": "truncnormal", "log_normal": "lognormal", "gauss
 _KEY_ALIASES = {"mean": "mu", "sd": "sigma", "std": "sigma", "distribution": "dist"}
 _KEYS = ("name", "dist", "low", "high", "mu", "sigma", "units")
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
+_SQRT_HALF = math.sqrt(0.5)
 
 
 @dataclass(frozen=True)
@@ -166,9 +167,10 @@ class PriorSet:
         self._two_low, self._two_high = self.low[both], self.high[both]
         self._two_width = self._width[both]
         self._gauss = _columns(gauss)
-        self._gauss_mu, self._gauss_inv = self.mu[gauss], 1.0 / self.sigma[gauss]
+        # z / sqrt(2) = (x - mu) / (sigma sqrt(2)): its square is the density's z^2 / 2.
+        self._gauss_mu, self._gauss_inv = self.mu[gauss], _SQRT_HALF / self.sigma[gauss]
         self._logn = _columns(logn)
-        self._logn_mu, self._logn_inv = self.mu[logn], 1.0 / self.sigma[logn]
+        self._logn_mu, self._logn_inv = self.mu[logn], _SQRT_HALF / self.sigma[logn]
         # log|dx/du| of the logistic map holds log(high - low) for each such column.
         self._log_width_sum = float(np.log(self._width[both]).sum())
         # Normalising constants of every marginal (uniform: 1 / width; normal and
@@ -207,7 +209,7 @@ class PriorSet:
         x, log_jac, log_prior = rows[:, d : 2 * d], rows[:, 2 * d], rows[:, 2 * d + 1]
         self._map(u, x, log_jac)
         self._density(x, log_prior)
-        if not math.isfinite(np.add.reduce(log_jac) + np.add.reduce(log_prior)):
+        if not math.isfinite(np.add.reduce(rows[:, 2 * d :], axis=None)):
             # NaN u gives NaN x: no density there (outside the support, as in logpdf). The
             # density of a log-normal is 0 at x = 0 (u below about -745 when low = 0).
             log_prior[np.isnan(log_jac) | np.isnan(log_prior)] = -np.inf
@@ -229,7 +231,7 @@ class PriorSet:
             # exp(700) is finite: beyond it x (and with it the Jacobian) is held, so that
             # a huge u gives a finite, very unlikely point rather than inf.
             v = np.minimum(u[:, one], 700.0)
-            log_jac += np.add.reduce(v, axis=1)
+            log_jac += _row_sums(v)
             np.exp(v, out=v)
             v *= self._one_sign
             v += self._one_base
@@ -239,7 +241,7 @@ class PriorSet:
             ub = u[:, two]
             log_s = special.log_expit(ub)
             log_s += special.log_expit(-ub)
-            log_jac += np.add.reduce(log_s, axis=1)
+            log_jac += _row_sums(log_s)
             v = special.expit(ub)
             v *= self._two_width
             v += self._two_low  # >= low: adding a number >= 0 rounds to no less
@@ -253,18 +255,17 @@ class PriorSet:
         g = self._gauss
         if g is not None:  # -z^2 / 2, z = (x - mu) / sigma
             z = x[:, g] - self._gauss_mu
-            z *= self._gauss_inv
+            z *= self._gauss_inv  # z / sqrt(2)
             z *= z
-            out -= 0.5 * np.add.reduce(z, axis=1)
+            out -= _row_sums(z)
         ln = self._logn
         if ln is not None:  # -z^2 / 2 - log x, z = (log x - mu) / sigma (d log x / dx = 1/x)
             lx = np.log(x[:, ln])
             z = lx - self._logn_mu
-            z *= self._logn_inv
+            z *= self._logn_inv  # z / sqrt(2)
             z *= z
-            z *= 0.5
             z += lx
-            out -= np.add.reduce(z, axis=1)
+            out -= _row_sums(z)
 
     # ---------------------------------------------------------------- the parts
     def logpdf(self, x: npt.ArrayLike) -> np.ndarray:
@@ -340,14 +341,21 @@ class PriorSet:
         return np.where(np.isfinite(s) & (s > 0), s, 1.0)
 
 
-def _columns(idx: np.ndarray) -> slice | np.ndarray | None:
-    """Columns ``idx`` as a basic slice when contiguous (indexing gives a view), else the
-    index array; None when empty."""
+def _columns(idx: np.ndarray) -> int | slice | np.ndarray | None:
+    """Columns ``idx`` as one integer (indexing gives a 1-D view: its row sums are itself),
+    a basic slice when contiguous (a 2-D view), else the index array; None when empty."""
     if idx.size == 0:
         return None
+    if idx.size == 1:
+        return int(idx[0])
     if idx[-1] - idx[0] == idx.size - 1:
         return slice(int(idx[0]), int(idx[-1]) + 1)
     return idx
+
+
+def _row_sums(v: np.ndarray) -> np.ndarray:
+    """Sums over the columns of ``v`` (k, m) taken by :func:`_columns`; (k,) is one column."""
+    return v if v.ndim == 1 else np.add.reduce(v, axis=1)
 
 
 def _log_ndtr_diff(b: float, a: float) -> float:
