@@ -27,15 +27,7 @@ import numpy as np
 
 from winnow.tasks.records import Diagnostics, QoIEstimate, QoIValue, RunOutcome, Selection
 
-from ._estimates import (
-    UNCERTAINTY_LABELS,
-    bootstrap_mean_se,
-    chain_ess,
-    estimate_qoi,
-    kish_ess,
-    weighted_mean_sd,
-    weighted_quantile,
-)
+from ._estimates import UNCERTAINTY_LABELS, estimate_qoi
 from ._readers import QoIReadError, read_axis, read_qoi, validate_qoi_spec
 from ._report_checks import representation_warning
 from ._report_csv import export_csv
@@ -43,6 +35,7 @@ from ._report_page import build_report, report_markdown
 from ._report_tables import report_tables
 from ._report_text import CAUTION as GENERAL_CAUTION
 from ._uncertainty import ChainGeometry, fit_error_model
+from ._weighted import bootstrap_mean_se, chain_ess, kish_ess, weighted_mean_sd, weighted_quantile
 
 __all__ = [
     "GENERAL_CAUTION",

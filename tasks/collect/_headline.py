@@ -23,6 +23,7 @@ import numpy as np
 from scipy import stats
 
 from ._uncertainty import ChainGeometry, ErrorFit, fit_error_model, forecast_errors
+from ._weighted import weighted_quantile
 
 __all__ = [
     "LEVEL",
@@ -176,8 +177,6 @@ def quantile_interval(
     quantile function. An end beyond the plotting positions of the smallest or largest run
     value is not bounded by the runs and is reported as -inf or +inf.
     """
-    from ._estimates import weighted_quantile
-
     lo_p, hi_p = cdf["interval"]
     p_hat = cdf["estimate"]
     h_lo, h_hi = p_hat - lo_p, hi_p - p_hat

@@ -13,6 +13,8 @@ from typing import Any
 
 import numpy as np
 
+from ._weighted import weighted_quantile
+
 __all__ = [
     "cdf_curve",
     "costly_cheap_png",
@@ -192,13 +194,11 @@ def cdf_curve(
     """The weighted CDF of the runs as the report draws it: ``(x, p)`` with ``x`` increasing.
 
     It is the graph of the report's own quantile function,
-    :func:`winnow.tasks.collect._estimates.weighted_quantile` (weighted Hazen: linear between the
+    :func:`winnow.tasks.collect.weighted_quantile` (weighted Hazen: linear between the
     midpoints of the weighted empirical CDF's steps, flat beyond the first and last), evaluated
     at a fine grid of probabilities, at every step midpoint and at ``probs``. So a quantile
     the report states, drawn at ``(quantile, q)``, lies on the drawn curve exactly.
     """
-    from ._estimates import weighted_quantile
-
     y = np.asarray(values, dtype=float).reshape(-1)
     w = np.asarray(weights, dtype=float).reshape(-1)
     keep = w > 0
@@ -258,8 +258,6 @@ def qoi_figure(
     make = _figure_class()
     if make is None or len(values) == 0:
         return None
-    from ._estimates import weighted_quantile
-
     values = np.asarray(values, dtype=float)
     weights = np.asarray(weights, dtype=float)
     weights = weights / weights.sum()
