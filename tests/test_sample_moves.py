@@ -136,3 +136,12 @@ def test_moves_declared_symmetric_return_a_zero_log_ratio(name):
         others = np.empty((0, 2))
     _, log_q = move.propose(x, others, np.random.default_rng(5), ctx)
     assert move.symmetric == (not np.any(log_q))  # stretch: (d - 1) log z, not all zero
+
+
+def test_adaptive_metropolis_takes_every_chain_at_once():
+    # A move with ensemble = False gets all chains (the driver's contract, see _move):
+    # its pooled statistics would otherwise mix chains of different iterations.
+    move = MOVES["adaptive_metropolis"](2, 4, np.ones(2))
+    ctx = StepContext(0, np.arange(2), True, None, block=1, block_start=0)
+    with pytest.raises(ValueError, match="updates all 4 chains at once, got 2 rows"):
+        move.propose(np.zeros((2, 2)), np.empty((0, 2)), np.random.default_rng(0), ctx)

@@ -103,7 +103,8 @@ class AdaptiveMetropolis(Move):
             "mean": np.zeros((n_chains, d)),
             "m2": np.zeros((d, d)),
             "chol": np.linalg.cholesky(c0),
-            "log_lambda": np.zeros(n_chains),
+            "log_lambda": np.zeros(n_chains),  # one value for all chains (held per chain in
+            # the checkpoint format winnow.sample-state/3)
             "steps": np.zeros(1),
             "buffer": np.zeros((self.refresh, n_chains, d)),  # states not yet folded in
             "held": np.zeros(1),

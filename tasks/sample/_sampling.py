@@ -112,18 +112,15 @@ class _Target:
         d = self.ps.d
         return rows[:, 2 * d], rows[:, 2 * d + 1], rows[:, d : 2 * d]
 
-    def lists(self, u: np.ndarray) -> list[list[float]] | None:
-        """:meth:`rows` as lists of Python floats when the log posterior offers them (a
-        few rows of a row-by-row model, see ``LogPosterior.lists_at_unconstrained``)."""
-        return self.f.lists_at_unconstrained(u) if self.clean else None  # type: ignore[attr-defined]
-
     def rows(self, u: np.ndarray) -> np.ndarray:
         """Rows ``[u | x(u) | target | log posterior]``, shape (k, 2 d + 2), as the sampler
         keeps its chains; without :meth:`__call__`'s np.errstate (the sampler's inner loop
         sets it once for a LogPosterior; a plain function does not need it)."""
         if self.clean:  # the prior's map, density and Jacobian in one pass
             return self.f.rows_at_unconstrained(u)  # type: ignore[attr-defined]
-        x = self.ps.to_user(u)
+        rows = self.ps.transform_rows(u)
+        d = self.ps.d
+        x = np.ascontiguousarray(rows[:, d : 2 * d])  # a copy: the user's function may write
         lp = np.asarray(self.f(x), dtype=np.float64)
         if lp.shape != (len(u),):
             raise ValueError(
@@ -131,12 +128,8 @@ class _Target:
                 f"expected ({len(u)},)"
             )
         lp = np.where(np.isnan(lp) | (lp == np.inf), -np.inf, lp)
-        d = self.ps.d
-        rows = np.empty((len(u), 2 * d + 2))
-        rows[:, :d] = u
-        rows[:, d : 2 * d] = x
-        rows[:, 2 * d] = lp + self.ps.log_jacobian(u)
-        rows[:, 2 * d + 1] = lp
+        rows[:, 2 * d] += lp  # the log-Jacobian's column
+        rows[:, 2 * d + 1] = lp  # the user's log posterior replaces the log prior
         return rows
 
 
