@@ -40,12 +40,8 @@ from winnow.tasks.collect import _report_checks as RC
 from winnow.tasks.collect import _report_sections as RS
 from winnow.tasks.collect import _report_tables as RTab
 from winnow.tasks.collect import _report_text as RT
-from winnow.tasks.collect._report_plots import (
-    cdf_curve,
-    costly_cheap_figure,
-    format_number,
-    qoi_figure,
-)
+from winnow.tasks.collect._report_plots import format_number
+from winnow.tasks.collect._report_plots_qoi import cdf_curve, costly_cheap_figure, qoi_figure
 from winnow.tasks.collect._uncertainty import ChainGeometry
 from winnow.tasks.records import (
     Attempt,

@@ -210,8 +210,8 @@ def _html_blocks(blocks: list[tuple]) -> list[str]:
     return out
 
 
-def _html(data: ReportData) -> str:
-    t = report_tables(data)
+def _html_top(data: ReportData, t: dict[str, list]) -> list[str]:
+    """Title, caution, the list of sections and the answer."""
     nav = [("answer", "answer"), ("study", "study"), ("chain", "chain"), ("points", "points")]
     nav += [("runs", "runs")] + [(f"qoi-{e.name}", e.name) for e in data.estimates]
     if t["weights"]:
@@ -245,10 +245,14 @@ def _html(data: ReportData) -> str:
             body += _html_blocks(_answer_blocks(data, est))
     else:
         body.append('<p class="note">No estimates.</p>')
-    body += ['<h2 id="study">Study</h2>', _html_table(t["study"])]
+    return body
+
+
+def _html_chain(data: ReportData, t: dict[str, list]) -> list[str]:
+    """The chain: its diagnostics, traces and the cheap model against the observations."""
     diag = data.chain_diagnostics
     cls = "ok" if diag is not None and diag.passed else "fail" if diag is not None else "note"
-    body += [
+    body = [
         '<h2 id="chain">Posterior chain</h2>',
         f'<p class="{cls}">{_h(_diag_summary(data))}</p>',
     ]
@@ -281,7 +285,12 @@ def _html(data: ReportData) -> str:
             _img(png, "cheap model against the observations"),
             f'<p class="note">{_h(text)}</p>',
         ]
-    body.append('<h2 id="points">Chosen points</h2>')
+    return body
+
+
+def _html_points(data: ReportData, t: dict[str, list]) -> list[str]:
+    """The chosen points: the selection, its check, the weights and the pair plot."""
+    body = ['<h2 id="points">Chosen points</h2>']
     sel = data.selection
     if sel is not None:
         body.append(
@@ -308,6 +317,15 @@ def _html(data: ReportData) -> str:
         else:
             body.append('<p class="note">Pictures left out: matplotlib is not installed.</p>')
     body.append(_html_table(t["points"], "No selection recorded."))
+    return body
+
+
+def _html(data: ReportData) -> str:
+    t = report_tables(data)
+    body = _html_top(data, t)
+    body += ['<h2 id="study">Study</h2>', _html_table(t["study"])]
+    body += _html_chain(data, t)
+    body += _html_points(data, t)
     body.append('<h2 id="runs">Runs</h2>')
     if data.outcomes:
         counts: dict[str, int] = {}

@@ -12,13 +12,8 @@ import numpy as np
 from winnow.tasks.records import QoIEstimate
 
 from ._report_answer import _answer, _forecast_sentence
-from ._report_plots import (
-    costly_cheap_png,
-    forecast_png,
-    format_number,
-    observations_png,
-    qoi_plot_png,
-)
+from ._report_plots import format_number, observations_png
+from ._report_plots_qoi import costly_cheap_png, forecast_png, qoi_plot_png
 from ._report_text import (
     _MAX_VECTOR_ROWS,
     _axis_of,
@@ -446,24 +441,7 @@ def _qoi_blocks(data: ReportData, est: QoIEstimate, t: dict[str, list]) -> list[
                 "the event.",
             ),
         ]
-        sentence = _forecast_sentence(data, est)
-        if sentence:
-            fc = h.get("forecast") or {}
-            extra = {int(float(k)): float(v) for k, v in (fc.get("extra_points") or {}).items()}
-            j = int(fc.get("component", 0))
-            png = forecast_png(
-                est.n_used,
-                float(_num(fc.get("now")) or np.nan),
-                extra,
-                name=est.name,
-                units=est.units,
-                where=_where(data, est, j) if _is_vector(est) else "",
-            )
-            blocks += [
-                ("h3", "More runs"),
-                ("p", sentence),
-                ("image", png, f"stated thinning error of {est.name} against the budget", ""),
-            ]
+        blocks += _more_runs_blocks(data, est)
     left = _rows_of(t["left_out"], est.name)
     if left:
         blocks += [
@@ -474,6 +452,29 @@ def _qoi_blocks(data: ReportData, est: QoIEstimate, t: dict[str, list]) -> list[
         blocks.append(("h3", "Pictures"))
         blocks += _qoi_images(data, est)
     return blocks
+
+
+def _more_runs_blocks(data: ReportData, est: QoIEstimate) -> list[tuple]:
+    """What more runs would buy: the forecast sentence and its picture (none without one)."""
+    sentence = _forecast_sentence(data, est)
+    if not sentence:
+        return []
+    fc = (est.headline or {}).get("forecast") or {}
+    extra = {int(float(k)): float(v) for k, v in (fc.get("extra_points") or {}).items()}
+    j = int(fc.get("component", 0))
+    png = forecast_png(
+        est.n_used,
+        float(_num(fc.get("now")) or np.nan),
+        extra,
+        name=est.name,
+        units=est.units,
+        where=_where(data, est, j) if _is_vector(est) else "",
+    )
+    return [
+        ("h3", "More runs"),
+        ("p", sentence),
+        ("image", png, f"stated thinning error of {est.name} against the budget", ""),
+    ]
 
 
 def _plain_summary_rows(data: ReportData, est: QoIEstimate) -> list[dict[str, Any]]:
