@@ -29,7 +29,7 @@ def main() -> int:
     with tempfile.TemporaryDirectory(prefix="winnow-bench-demo-") as tmp:
         tmp_path = Path(tmp)
         data["store"] = str(tmp_path / "aquifer_demo.h5")
-        data["work_dir"] = str(tmp_path / "runs")
+        data["run_root"] = str(tmp_path / "runs")
         data["sample"]["observations"]["file"] = str(
             ROOT / "examples/aquifer/data/observations.csv"
         )

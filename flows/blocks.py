@@ -18,7 +18,7 @@ from typing import Any, ClassVar
 from prefect.blocks.core import Block
 from pydantic import Field
 
-from winnow.tasks.config import DispatchSettings, StudyConfig, load_config
+from winnow.tasks.config import DispatchSettings, InputFile, StudyConfig, load_config
 
 __all__ = ["LOGO_FILE", "RunStoreLocation", "SolverSettings", "expand_blocks", "load_study"]
 
@@ -41,9 +41,8 @@ class SolverSettings(Block):
     """Settings of a costly solver: templates, command, runner and limits.
 
     Holds the same fields as the ``dispatch`` section of a study config
-    (:class:`~winnow.tasks.config.DispatchSettings`; a test checks the two agree), with
-    ``copy_files``/``link_files`` for its ``copy``/``link``. :meth:`as_config` gives every
-    field back under the section's own keys.
+    (:class:`~winnow.tasks.config.DispatchSettings`; a test checks the two agree).
+    :meth:`as_config` gives every field back under the section's own keys.
     """
 
     _block_type_name: ClassVar[str] = "winnow solver"
@@ -63,8 +62,8 @@ class SolverSettings(Block):
     # Required here, unlike in a config (default "."): a saved solver is used by studies in
     # many folders, and "next to whichever config names the block" is never what is meant.
     template_dir: str = Field(
-        description="Folder of the deck templates and of the files to copy or link (an "
-        "absolute path, or relative to the study config)."
+        description="Folder of the deck templates and of the input files (an absolute path, "
+        "or relative to the study config)."
     )
     templates: list[str] = Field(
         description="Deck templates (Jinja2) relative to template_dir, rendered into every "
@@ -74,11 +73,9 @@ class SolverSettings(Block):
         description="Solver command as an argument list with {deck}, {run_dir} and {python} "
         "placeholders."
     )
-    copy_files: list[str] = Field(
-        default_factory=list, description="Files copied unchanged into every run folder."
-    )
-    link_files: list[str] = Field(
-        default_factory=list, description="Files linked into every run folder."
+    inputs: list[InputFile] = Field(
+        default_factory=list,
+        description="Files put unchanged into every run folder, each {file, stage: copy | link}.",
     )
     constants: dict[str, Any] = Field(
         default_factory=dict, description="User constants available in the templates."
@@ -114,7 +111,7 @@ class SolverSettings(Block):
         """The block as a ``dispatch`` config section (validated with the study config).
 
         Every field of :class:`~winnow.tasks.config.DispatchSettings` is given, under the key
-        a config file uses for it (``copy``, ``link``).
+        a config file uses for it.
         """
         data = self.model_dump(include=set(_DISPATCH))
         return {(_DISPATCH[name].alias or name): data[name] for name in _DISPATCH}
@@ -133,18 +130,18 @@ class RunStoreLocation(Block):
     from winnow.flows.blocks import RunStoreLocation
 
     location = RunStoreLocation.load("BLOCK_NAME")
-    print(location.store, location.work_dir)
+    print(location.store, location.run_root)
     """
 
     store: str = Field(description="Path of the HDF5 run store file.")
-    work_dir: str = Field(description="Folder holding one run folder per chosen point.")
+    run_root: str = Field(description="Folder holding one run folder per chosen point.")
 
 
 def expand_blocks(data: Any, *, source: str = "<config>") -> Any:
     """Replace ``{block: NAME}`` references in a parsed config with the saved block values.
 
     ``dispatch: {block: NAME}`` loads a :class:`SolverSettings` block; ``store: {block: NAME}``
-    loads a :class:`RunStoreLocation` block and sets both ``store`` and ``work_dir``.
+    loads a :class:`RunStoreLocation` block and sets both ``store`` and ``run_root``.
 
     Raises
     ------
@@ -169,7 +166,7 @@ def expand_blocks(data: Any, *, source: str = "<config>") -> Any:
             )
         loc = _load(RunStoreLocation, s["block"], f"{source}: store.block")
         out["store"] = loc.store
-        out.setdefault("work_dir", loc.work_dir)
+        out.setdefault("run_root", loc.run_root)
     return out
 
 

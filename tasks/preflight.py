@@ -105,16 +105,19 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
     decks, template_root = deck_spec(config, base_dir)
     if not template_root.is_dir():
         raise FileNotFoundError(f"dispatch.template_dir: folder not found: {template_root}")
-    for field, items in (
-        ("templates", d.templates),
-        ("copy", d.copy_files),
-        ("link", d.link_files),
-    ):
-        for i, rel in enumerate(items):
-            if not (template_root / rel).is_file():
-                raise FileNotFoundError(
-                    f"dispatch.{field}[{i}]: file not found: {template_root / rel}"
-                )
+    for i, rel in enumerate(d.templates):
+        if not (template_root / rel).is_file():
+            raise FileNotFoundError(
+                f"dispatch.templates[{i}]: file not found: {template_root / rel}"
+            )
+    for i, f in enumerate(d.inputs):
+        found = (template_root / f.file).is_file() or (
+            f.stage == "link" and (template_root / f.file).is_dir()  # a linked folder
+        )
+        if not found:
+            raise FileNotFoundError(
+                f"dispatch.inputs[{i}].file: file not found: {template_root / f.file}"
+            )
     # Render one trial deck (prior midpoint) into a scratch folder: undefined names, syntax
     # errors and paths escaping the run folder are reported now, before the study starts.
     import tempfile
@@ -136,8 +139,8 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
             )
         except ValueError as exc:
             raise InputError(f"dispatch.templates: {exc}") from None
-    for field, rel in (("store", config.store), ("work_dir", config.work_dir)):
-        _check_creatable(field, resolve(here, rel), is_dir=field == "work_dir")
+    for field, rel in (("store", config.store), ("run_root", config.run_root)):
+        _check_creatable(field, resolve(here, rel), is_dir=field == "run_root")
     exe = solver_command(d.command)[0]
     if shutil.which(exe) is None and not resolve(here, exe).is_file():
         raise FileNotFoundError(

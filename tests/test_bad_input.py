@@ -100,12 +100,30 @@ CONFIG_CASES = {
         ["dispatch.templates", "/etc/hostname"],
     ),
     "copied file escapes": (
-        {"dispatch__copy": ["../outside.txt"]},
-        ["copy", "../outside.txt", "inside the run folder"],
+        {"dispatch__inputs": ["../outside.txt"]},
+        ["dispatch.inputs[0].file", "../outside.txt", "inside the run folder"],
     ),
     "missing chain file": (
         {"sample__import_chain__file": "nope.npy"},
         ["nope.npy"],
+    ),
+    # keys of winnow 0.1, renamed since (issue 17 item 18): the message names the new key
+    # and gives the line to write, for one release
+    "old key work_dir": (
+        {"run_root": None, "work_dir": "runs"},
+        ["study.yaml: work_dir:", "renamed", "(now 'run_root')", "write run_root: runs"],
+    ),
+    "old key copy": (
+        {"dispatch__copy": ["mesh.msh", "table.csv"]},
+        ["dispatch.copy:", "(now 'inputs')", "write inputs: [{file: mesh.msh}, {file: table.csv}]"],
+    ),
+    "old key link": (
+        {"dispatch__link": ["big.dat"]},
+        ["dispatch.link:", "(now 'inputs')", "write inputs: [{file: big.dat, stage: link}]"],
+    ),
+    "unknown input stage": (
+        {"dispatch__inputs": [{"file": "a.txt", "stage": "symlink"}]},
+        ["dispatch.inputs.0.stage", "'copy' or 'link'"],
     ),
 }
 
@@ -381,17 +399,19 @@ def test_relative_solver_next_to_config_is_refused_with_fix(tmp_path, command):
         tmp_path, [command, cfg], str(cfg), "dispatch.command[1]", "'solver.py'", "run folder"
     )
     assert "{config_dir}/solver.py" in err, err
-    assert f"copy: [{str(tmp_path.resolve() / 'solver.py')!r}]" in err, err
+    assert f"inputs: [{{file: {tmp_path.resolve() / 'solver.py'}}}]" in err, err
     assert not (tmp_path / "runs").exists()
 
 
-@pytest.mark.parametrize("field", ["copy", "link"])
-def test_dotdot_staging_path_names_its_field_and_index(tmp_path, field):
-    cfg = _solver_beside(tmp_path, **{field: ["../solver.py"]})
+@pytest.mark.parametrize("stage", ["copy", "link"])
+def test_dotdot_staging_path_names_its_field_and_index(tmp_path, stage):
+    cfg = _solver_beside(tmp_path, inputs=[{"file": "../solver.py", "stage": stage}])
     for command in ("run", "validate"):
-        err = _refused(tmp_path, [command, cfg], f"dispatch.{field}[0]", "'../solver.py'")
+        err = _refused(tmp_path, [command, cfg], "dispatch.inputs[0].file", "'../solver.py'")
         # the fix: the absolute path (staged under its base name); not the templates field
-        assert f"{field}: [{str(tmp_path.resolve() / 'solver.py')!r}]" in err, err
+        absolute = tmp_path.resolve() / "solver.py"
+        fix = f"{{file: {absolute}}}" if stage == "copy" else f"{{file: {absolute}, stage: link}}"
+        assert f"inputs: [{fix}]" in err, err
         assert "dispatch.templates" not in err, err
 
 
@@ -404,7 +424,7 @@ def test_config_dir_placeholder_and_staged_copy_both_run(tmp_path):
         "beside": {"command": ["{python}", "{config_dir}/solver.py", "{deck}"]},
         "staged": {
             "command": ["{python}", "solver.py", "{deck}"],
-            "copy": [str(tmp_path.resolve() / "staged" / "solver.py")],
+            "inputs": [{"file": str(tmp_path.resolve() / "staged" / "solver.py")}],
         },
     }
     for name, dispatch in cases.items():

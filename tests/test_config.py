@@ -149,7 +149,7 @@ def test_run_with_bad_config_exits_2_and_writes_nothing(tmp_path):
     data = demo_data()
     data["budget"] = 0
     data["store"] = str(tmp_path / "study.h5")
-    data["work_dir"] = str(tmp_path / "runs")
+    data["run_root"] = str(tmp_path / "runs")
     cfg = tmp_path / "study.yaml"
     cfg.write_text(yaml.safe_dump(data))
     before = sorted(os.listdir(tmp_path))
@@ -164,7 +164,7 @@ def _refused_by_run(tmp_path: Path, data: dict, command: str = "run", *, in_file
     written; the message (which starts with the config file's name when ``in_file``: the
     loader's errors do, the checks of the files a config names start with the field)."""
     data["store"] = str(tmp_path / "study.h5")
-    data["work_dir"] = str(tmp_path / "runs")
+    data["run_root"] = str(tmp_path / "runs")
     cfg = tmp_path / "study.yaml"
     cfg.write_text(yaml.safe_dump(data, sort_keys=False))
     before = sorted(os.listdir(tmp_path))
@@ -243,10 +243,10 @@ def test_missing_observation_column_names_its_field(tmp_path, field, value):
             "dispatch.runner.dask.adress: Extra inputs are not permitted (got 1); "
             "did you mean 'address'?",
         ),
-        (  # the key as written in YAML (the alias), not the Python field name copy_files
+        (  # a key inside the dispatch section
             ("dispatch",),
-            "cpy",
-            "dispatch.cpy: Extra inputs are not permitted (got 1); did you mean 'copy'?",
+            "inptus",
+            "dispatch.inptus: Extra inputs are not permitted (got 1); did you mean 'inputs'?",
         ),
         (  # nothing close: the keys accepted there
             ("thin",),
@@ -255,7 +255,7 @@ def test_missing_observation_column_names_its_field(tmp_path, field, value):
             "exact_max_rows, feature_map, features, kernel, method, replace_unweighted, weights",
         ),
     ],
-    ids=["top", "parameter", "noise", "dask runner", "alias", "no close key"],
+    ids=["top", "parameter", "noise", "dask runner", "dispatch", "no close key"],
 )
 def test_unknown_key_gets_a_suggestion(tmp_path, where, key, expected):
     """Issue 17 item 10 (c): difflib.get_close_matches over the keys accepted at that place."""

@@ -4,7 +4,7 @@ The solver runs with its run folder as working folder (tasks/dispatch/_process.p
 Python's subprocess documentation ("Popen constructor", ``cwd``) states that a relative
 program path, and a relative file handed to it (``python solver.py``), is then taken
 relative to that folder. So a relative file named in ``dispatch.command`` must be one the
-decks stage into the run folder (templates, copy, link) or one the solver writes
+decks stage into the run folder (templates, inputs) or one the solver writes
 (``outputs``); the contract of the error (field, index, a fix) is issue 17 item 5.
 Through the command line (exit 2, nothing written) see tests/test_bad_input.py.
 """
@@ -29,12 +29,12 @@ def _dispatch(command, **kw):
     [
         # a rendered template loses its .j2; copies keep their relative name
         (["{python}", "run.py", "{deck}"], {"templates": ["deck.in.j2", "run.py.j2"]}),
-        (["{python}", "scripts/run.py"], {"copy": ["scripts/run.py"]}),
-        (["{python}", "./scripts/run.py"], {"copy": ["scripts/run.py"]}),
-        # an absolute copy or link is staged under its base name
-        (["bash", "run.sh"], {"copy": ["/opt/tools/run.sh"]}),
+        (["{python}", "scripts/run.py"], {"inputs": ["scripts/run.py"]}),
+        (["{python}", "./scripts/run.py"], {"inputs": [{"file": "scripts/run.py"}]}),
+        # an absolute input (copied or linked) is staged under its base name
+        (["bash", "run.sh"], {"inputs": ["/opt/tools/run.sh"]}),
         # a file inside a linked folder, and a folder that holds staged files
-        (["solver", "--mesh", "mesh/grid.msh"], {"link": ["mesh"]}),
+        (["solver", "--mesh", "mesh/grid.msh"], {"inputs": [{"file": "mesh", "stage": "link"}]}),
         (["solver", "sub/"], {"templates": ["sub/a.in.j2"]}),
         # written by the solver
         (["solver", "{deck}", "out/result.h5"], {"outputs": ["out/result.h5"]}),
@@ -57,10 +57,10 @@ def test_staged_or_not_a_file_is_accepted(command, kw):
     [
         (["{python}", "solver.py", "{deck}"], {}, 1, "solver.py"),  # the case of issue 17
         (["./solver", "{deck}"], {}, 0, "solver"),
-        (["bin/solver", "{deck}"], {"copy": ["bin/other"]}, 0, "bin/solver"),
+        (["bin/solver", "{deck}"], {"inputs": ["bin/other"]}, 0, "bin/solver"),
         (["solver", "--mesh=grid/a.msh"], {}, 1, "grid/a.msh"),
         (["{python}", "../solver.py"], {}, 1, "../solver.py"),
-        (["bash", "run.sh"], {"templates": ["deck.in.j2"], "copy": ["run.sh.j2"]}, 1, "run.sh"),
+        (["bash", "run.sh"], {"templates": ["deck.in.j2"], "inputs": ["run.sh.j2"]}, 1, "run.sh"),
     ],
 )
 def test_unstaged_relative_file_names_command_index_and_fix(command, kw, index, path):
@@ -69,19 +69,22 @@ def test_unstaged_relative_file_names_command_index_and_fix(command, kw, index, 
     msg = str(exc.value)
     assert f"dispatch.command[{index}]" in msg, msg
     assert "run folder" in msg and f"{{config_dir}}/{path}" in msg, msg
-    assert "copy: [" in msg, msg
+    assert "inputs: [{file: " in msg, msg
 
 
-@pytest.mark.parametrize("field", ["copy", "link"])
-def test_dotdot_in_copy_or_link_names_its_field_index_and_fix(tmp_path, field):
-    data = _study(tmp_path, {field: ["data/ok.txt", "../shared/mesh.msh"]})
+@pytest.mark.parametrize("stage", ["copy", "link"])
+def test_dotdot_in_inputs_names_its_field_index_and_fix(tmp_path, stage):
+    entry = {"file": "../shared/mesh.msh", "stage": stage}
+    data = _study(tmp_path, {"inputs": ["data/ok.txt", entry]})
     with pytest.raises(ValueError) as exc:
         load_config(data)
     msg = str(exc.value)
-    assert f"dispatch.{field}[1]" in msg and "dispatch.templates" not in msg, msg
-    # the fix: the file's absolute path (template_dir is "tpl" under the config's folder)
+    assert "dispatch.inputs[1].file" in msg and "dispatch.templates" not in msg, msg
+    # the fix: the file's absolute path (template_dir is "tpl" under the config's folder),
+    # with the entry's own stage kept
     absolute = str(tmp_path.resolve() / "shared" / "mesh.msh")
-    assert f"{field}: [{absolute!r}] (staged as 'mesh.msh')" in msg, msg
+    fix = f"{{file: {absolute}}}" if stage == "copy" else f"{{file: {absolute}, stage: link}}"
+    assert f"inputs: [{fix}] (staged as 'mesh.msh')" in msg, msg
     assert "inside the run folder" in msg, msg
 
 
@@ -121,7 +124,7 @@ def _study(folder: Path, dispatch: dict) -> Path:
     data = {
         "study": {"name": "paths"},
         "store": "s.h5",
-        "work_dir": "runs",
+        "run_root": "runs",
         "budget": 2,
         "parameters": [
             {"name": "x", "units": "m", "prior": {"dist": "uniform", "low": 0, "high": 1}}

@@ -5,7 +5,7 @@ Simulations (honest about what they are):
 
 * *run folder not writable*: the tests run as root, and root ignores permission bits
   (common practice: CAP_DAC_OVERRIDE), so ``chmod`` cannot make a folder unwritable here.
-  Instead ``work_dir`` is put under a regular FILE, so creating it fails with
+  Instead ``run_root`` is put under a regular FILE, so creating it fails with
   ``NotADirectoryError`` for any user.
 * *disk full*: the store's copy step (``shutil.copyfile`` in the commit that records the
   runs) writes half the file and raises ``OSError(ENOSPC)``, in-process.
@@ -48,8 +48,8 @@ def _sha(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def test_work_dir_that_cannot_be_created_keeps_the_store_and_resumes(tmp_path, prefect_harness):
-    cfg = make_study(tmp_path, work_dir="blocker/runs")
+def test_run_root_that_cannot_be_created_keeps_the_store_and_resumes(tmp_path, prefect_harness):
+    cfg = make_study(tmp_path, run_root="blocker/runs")
     (tmp_path / "blocker").write_text("a regular file where a folder should be\n")
     with pytest.raises(OSError):  # NotADirectoryError or FileExistsError, by the OS
         run_study(cfg)
@@ -68,13 +68,13 @@ def test_work_dir_that_cannot_be_created_keeps_the_store_and_resumes(tmp_path, p
     assert check(store).ok
 
 
-def test_work_dir_under_a_file_is_refused_before_anything_is_written(tmp_path):
+def test_run_root_under_a_file_is_refused_before_anything_is_written(tmp_path):
     # regression: preflight used to miss it (store created, then a traceback); fixed in 65d646a
-    cfg = make_study(tmp_path, work_dir="blocker/runs")
+    cfg = make_study(tmp_path, run_root="blocker/runs")
     (tmp_path / "blocker").write_text("a regular file\n")
     before = snapshot(tmp_path)
     res = CliRunner().invoke(app, ["validate", str(cfg)])
-    assert res.exit_code == 2 and "work_dir" in res.stderr, res.output
+    assert res.exit_code == 2 and "run_root" in res.stderr, res.output
     assert snapshot(tmp_path) == before
 
 

@@ -83,9 +83,9 @@ def test_saved_blocks_expand_into_a_config(prefect_harness):
         concurrency=4,
         runner={"dask": {"address": "tcp://127.0.0.1:8786"}},
     ).save("cluster-fem", overwrite=True)
-    RunStoreLocation(store="/data/study.h5", work_dir="/data/runs").save("team", overwrite=True)
+    RunStoreLocation(store="/data/study.h5", run_root="/data/runs").save("team", overwrite=True)
     out = expand_blocks({"dispatch": {"block": "cluster-fem"}, "store": {"block": "team"}})
-    assert out["store"] == "/data/study.h5" and out["work_dir"] == "/data/runs"
+    assert out["store"] == "/data/study.h5" and out["run_root"] == "/data/runs"
     assert out["dispatch"]["command"] == ["fem", "{deck}"]
     assert out["dispatch"]["template_dir"] == "/opt/solver/templates"
     assert out["dispatch"]["runner"] == {"dask": {"address": "tcp://127.0.0.1:8786"}}
@@ -98,8 +98,7 @@ def test_saved_blocks_expand_into_a_config(prefect_harness):
 _EVERY_DISPATCH_SETTING = {
     "template_dir": "/opt/solver/templates",
     "templates": ["model.inp.j2"],
-    "copy_files": ["mesh.msh"],
-    "link_files": ["big_table.dat"],
+    "inputs": [{"file": "mesh.msh", "stage": "copy"}, {"file": "big_table.dat", "stage": "link"}],
     "constants": {"t_end": 86400.0},
     "formats": {"log10_T": ".6e"},
     "command": ["fem", "{deck}"],
@@ -134,13 +133,15 @@ def test_solver_block_carries_every_dispatch_setting():
             ), name
 
     section = SolverSettings(**_EVERY_DISPATCH_SETTING).as_config()
-    assert set(section) == {f.alias or n for n, f in settings_fields.items()}  # copy, link
+    assert set(section) == {f.alias or n for n, f in settings_fields.items()}
     parsed = DispatchSettings.model_validate(section)
     default = DispatchSettings(templates=["x.j2"], command=["x"])
     for name, value in _EVERY_DISPATCH_SETTING.items():
         got = getattr(parsed, name)
         if name == "runner":
             got = got.model_dump(include={"batch": {"submit", "directives"}})
+        if name == "inputs":
+            got = [f.model_dump() for f in got]
         assert got == value, name
         assert getattr(default, name) != getattr(parsed, name), name  # not a default
 

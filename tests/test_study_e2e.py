@@ -34,7 +34,7 @@ def small_demo(tmp: Path, **changes) -> tuple[Path, dict]:
     data = yaml.safe_load(DEMO.read_text())
     data["budget"] = 5
     data["store"] = str(tmp / "study.h5")
-    data["work_dir"] = str(tmp / "runs")
+    data["run_root"] = str(tmp / "runs")
     data["sample"]["draws"] = 6000
     data["sample"]["observations"]["file"] = str(ROOT / "examples/aquifer/data/observations.csv")
     data["dispatch"]["template_dir"] = str(ROOT / "examples/aquifer/templates")

@@ -33,6 +33,7 @@ from ._dispatch import (
     DaskRunner,
     DaskSettings,
     DispatchSettings,
+    InputFile,
     LocalClusterSettings,
 )
 from ._load import (
@@ -73,6 +74,7 @@ __all__ = [
     "FunctionReader",
     "Hdf5Reader",
     "ImportSettings",
+    "InputFile",
     "JsonReader",
     "LocalClusterSettings",
     "ModelSettings",

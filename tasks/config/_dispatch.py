@@ -157,10 +157,18 @@ def _relative_file_in_argv(i: int, arg: str) -> str | None:
     return arg
 
 
-def _dotdot_message(field: str, i: int, entry: str, tdir: str, folder: Any) -> str:
+def _input_entry(file: str, stage: str = "copy") -> str:
+    """An ``inputs`` entry as written in YAML."""
+    return f"{{file: {file}}}" if stage == "copy" else f"{{file: {file}, stage: {stage}}}"
+
+
+def _dotdot_message(
+    field: str, i: int, entry: str, tdir: str, folder: Any, stage: str = "copy"
+) -> str:
     """Why a staging path with ``..`` is refused, and what to write instead."""
     name = PurePosixPath(entry.replace("\\", "/")).name
-    where = f"dispatch.{field}[{i}]: path {entry!r} contains '..'"
+    at = f"dispatch.{field}[{i}]" + (".file" if field == "inputs" else "")
+    where = f"{at}: path {entry!r} contains '..'"
     if field == "templates":
         return (
             f"{where}; templates are read from inside template_dir ({tdir!r}) and must stay "
@@ -168,13 +176,13 @@ def _dotdot_message(field: str, i: int, entry: str, tdir: str, folder: Any) -> s
             "to a folder that holds it"
         )
     if folder is not None:
-        absolute = repr(os.path.normpath(os.path.join(str(folder), tdir, entry)))
+        absolute = os.path.normpath(os.path.join(str(folder), tdir, entry))
     else:
-        absolute = "its absolute path"
+        absolute = "ABSOLUTE_PATH"
     return (
         f"{where}; a staged file keeps its relative name, which must stay inside the run "
-        f"folder: write {field}: [{absolute}] (staged as {name!r}) or move the file under "
-        f"template_dir ({tdir!r})"
+        f"folder: write inputs: [{_input_entry(absolute, stage)}] (staged as {name!r}) or "
+        f"move the file under template_dir ({tdir!r})"
     )
 
 
@@ -184,16 +192,40 @@ def _unstaged_message(i: int, arg: str, rel: str, tdir: str, folder: Any) -> str
     where = "" if rel == arg else f" (the path {rel!r})"
     beside = None if folder is None else os.path.join(str(folder), *_posix(rel).parts)
     if beside is not None and "/" not in clean and os.path.isfile(beside):
-        stage = f"copy: [{beside!r}]"  # an absolute copy is staged under its base name
+        stage = f"inputs: [{_input_entry(beside)}]"  # an absolute file: staged by base name
     elif tdir in (".", "./", ""):
-        stage = f"copy: [{clean!r}]"
+        stage = f"inputs: [{_input_entry(clean)}]"
     else:
-        stage = f"copy: [{clean!r}] (a path relative to template_dir {tdir!r})"
+        stage = f"inputs: [{_input_entry(clean)}] (a path relative to template_dir {tdir!r})"
     return (
         f"dispatch.command[{i}]: {arg!r}{where} is a relative path, but the solver runs in "
-        "its run folder, where no such file is staged (templates, copy, link, outputs); "
+        "its run folder, where no such file is staged (templates, inputs, outputs); "
         f"use {{config_dir}}/{clean} for a file next to the config, or stage it with {stage}"
     )
+
+
+#: How an input file is put into a run folder (``dispatch.inputs[].stage``).
+StageName = Literal["copy", "link"]
+
+
+class InputFile(_Model):
+    """One file put unchanged into every run folder (``dispatch.inputs``)."""
+
+    file: str = Field(
+        description="Path relative to template_dir (staged under that relative path) or "
+        "absolute (staged under its base name); for stage: link it may be a folder."
+    )
+    stage: StageName = Field(
+        "copy",
+        description="'copy': a copy in each run folder, its content part of the run key; "
+        "'link': a symbolic link (large meshes and tables; its content is not hashed).",
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _bare_path(cls, v: Any) -> Any:
+        # `inputs: [mesh.msh]` is the common case: a copy
+        return {"file": v} if isinstance(v, str) else v
 
 
 class DispatchSettings(_Model):
@@ -201,24 +233,18 @@ class DispatchSettings(_Model):
 
     template_dir: str = Field(
         ".",
-        description="Folder of the deck templates and of the files to copy or link, relative "
-        "to the config file.",
+        description="Folder of the deck templates and of the input files, relative to the "
+        "config file.",
     )
     templates: list[str] = Field(
         min_length=1,
         description="Deck templates (Jinja2), relative to template_dir; each is rendered into "
         "the run folder under the same relative path without a trailing '.j2'.",
     )
-    copy_files: list[str] = Field(
+    inputs: list[InputFile] = Field(
         default_factory=list,
-        alias="copy",
-        description="Files copied unchanged into every run folder (meshes, tables), relative "
-        "to template_dir.",
-    )
-    link_files: list[str] = Field(
-        default_factory=list,
-        alias="link",
-        description="Files linked (symlink) into every run folder, relative to template_dir.",
+        description="Files put unchanged into every run folder (meshes, tables, scripts), each "
+        "{file: PATH, stage: copy | link}; a bare PATH is staged as a copy.",
     )
     constants: dict[str, Any] = Field(
         default_factory=dict, description="User constants available in the templates."
@@ -233,7 +259,7 @@ class DispatchSettings(_Model):
         "run folder; placeholders {deck} (first rendered deck), {run_dir}, {python} (the "
         "Python running winnow) and {config_dir} (the config file's folder, absolute). A "
         "relative file in it (solver.py, bin/solver) must be staged into the run folder "
-        "(templates, copy, link); a file next to the config is {config_dir}/solver.py."
+        "(templates, inputs); a file next to the config is {config_dir}/solver.py."
     )
     env: dict[str, str] = Field(
         default_factory=dict, description="Extra environment variables for the solver."
@@ -260,6 +286,16 @@ class DispatchSettings(_Model):
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
+    @property
+    def copy_files(self) -> list[str]:
+        """The ``inputs`` staged as copies, in order."""
+        return [f.file for f in self.inputs if f.stage == "copy"]
+
+    @property
+    def link_files(self) -> list[str]:
+        """The ``inputs`` staged as symbolic links, in order."""
+        return [f.file for f in self.inputs if f.stage == "link"]
+
     _check_command = field_validator("command", mode="before")(_argv_list)
     _config_dir = field_validator("command", mode="after")(_fill_config_dir)
 
@@ -279,15 +315,15 @@ class DispatchSettings(_Model):
         tails: list[PurePosixPath] = []  # absolute templates whose place in root is unknown
         for field, items in (
             ("templates", self.templates),
-            ("copy", self.copy_files),
-            ("link", self.link_files),
+            ("inputs", [f.file for f in self.inputs]),
         ):
             for i, entry in enumerate(items):
                 if not _is_absolute(entry):
                     dest = _posix(entry)
                     if ".." in dest.parts:
-                        raise ValueError(_dotdot_message(field, i, entry, tdir, folder))
-                elif field != "templates":  # copied or linked under its base name
+                        stage = self.inputs[i].stage if field == "inputs" else "copy"
+                        raise ValueError(_dotdot_message(field, i, entry, tdir, folder, stage))
+                elif field != "templates":  # an input: copied or linked under its base name
                     dest = PurePosixPath(_posix(entry).name)
                 elif root is not None and _posix(entry).is_relative_to(root):
                     dest = _posix(entry).relative_to(root)  # rendered under its path in root

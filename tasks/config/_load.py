@@ -98,6 +98,44 @@ def _unknown_key_hint(loc: Sequence[Any]) -> str:
     return f"; expected one of: {', '.join(keys)}"
 
 
+def _value_at(data: Any, loc: Sequence[Any]) -> Any:
+    for part in loc:
+        if isinstance(data, dict):
+            data = data.get(part)
+        elif isinstance(data, list) and isinstance(part, int) and 0 <= part < len(data):
+            data = data[part]
+        else:
+            return None
+    return data
+
+
+def _as_inputs(value: Any, stage: str) -> str:
+    files = value if isinstance(value, list) else [value]
+    if stage == "copy":
+        entries = [f"{{file: {f}}}" for f in files]
+    else:
+        entries = [f"{{file: {f}, stage: {stage}}}" for f in files]
+    return f"inputs: [{', '.join(entries)}]"
+
+
+#: Keys of winnow 0.1 renamed since (issue 17 item 18): location -> (new key, what to write
+#: instead). For one release the old key is refused with a message naming the new one; then
+#: drop the entry and the plain unknown-key message takes over.
+_RENAMED: dict[tuple[str, ...], tuple[str, Callable[[Any], str]]] = {
+    ("work_dir",): ("run_root", lambda v: f"run_root: {v}"),
+    ("dispatch", "copy"): ("inputs", lambda v: _as_inputs(v, "copy")),
+    ("dispatch", "link"): ("inputs", lambda v: _as_inputs(v, "link")),
+}
+
+
+def _renamed_message(loc: tuple[Any, ...], data: Any) -> str | None:
+    """The message for a key of an earlier release, or None when ``loc`` is no such key."""
+    if loc not in _RENAMED:
+        return None
+    new, write = _RENAMED[loc]
+    return f"this key of winnow 0.1 was renamed (now '{new}'); write {write(_value_at(data, loc))}"
+
+
 def format_validation_error(exc: ValidationError, source: str, data: Any = None) -> str:
     """One line per problem: ``source: field.path: message (got value)``.
 
@@ -106,7 +144,22 @@ def format_validation_error(exc: ValidationError, source: str, data: Any = None)
     their position. An unknown key gets the closest accepted keys as a suggestion.
     """
     lines = []
-    for err in exc.errors(include_url=False):
+    errors = exc.errors(include_url=False)
+    # an old key that was renamed: its message says what to write, so the new key's
+    # "Field required" beside it would only repeat it
+    renamed = {
+        _RENAMED[tuple(e["loc"])][0]
+        for e in errors
+        if e["type"] == "extra_forbidden" and tuple(e["loc"]) in _RENAMED
+    }
+    for err in errors:
+        if err["type"] == "missing" and len(err["loc"]) == 1 and err["loc"][0] in renamed:
+            continue
+        if err["type"] == "extra_forbidden":
+            moved = _renamed_message(tuple(err["loc"]), data)
+            if moved is not None:
+                lines.append(f"{source}: {_field_path(list(err['loc']), data)}: {moved}")
+                continue
         parts = list(err["loc"])
         # a tagged union adds its tag to the path (runner.dask.dask...); drop the repeat
         parts = [

@@ -52,7 +52,7 @@ class StudyConfig(_Model):
 
     study: StudySettings = Field(description="Name, description and seed.")
     store: str = Field(description="HDF5 run store of the study, relative to the config file.")
-    work_dir: str = Field(
+    run_root: str = Field(
         description="Folder of the run folders (one per chosen point), relative to the config."
     )
     budget: int = Field(gt=0, description="Number of costly solver runs (chosen points).")

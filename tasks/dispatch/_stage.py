@@ -76,7 +76,7 @@ def prepare_runs(
     return render_selection(
         selection,
         chain.names,
-        run_root=resolve(base_dir / "x", config.work_dir),
+        run_root=resolve(base_dir / "x", config.run_root),
         decks=decks,
         command=config.dispatch.command,
         template_root=template_root,

@@ -46,7 +46,7 @@ def study_data(folder: Path, **over: Any) -> dict[str, Any]:
     data: dict[str, Any] = {
         "study": {"name": "faults", "description": "fault injection", "seed": 11},
         "store": "study.h5",
-        "work_dir": "runs",
+        "run_root": "runs",
         "budget": 6,
         "parameters": [
             {"name": "x", "units": "m", "prior": {"dist": "uniform", "low": -8, "high": 8}},

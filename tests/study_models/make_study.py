@@ -27,7 +27,7 @@ def make_study(folder: Path, *, budget: int = 4, seed: int = 3, **overrides) -> 
     data = {
         "study": {"name": "line-test", "seed": seed},
         "store": "study.h5",
-        "work_dir": "runs",
+        "run_root": "runs",
         "budget": budget,
         "parameters": [
             {"name": "a", "units": "-", "prior": {"dist": "normal", "mu": 0.0, "sigma": 10.0}},
