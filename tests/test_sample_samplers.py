@@ -1,5 +1,5 @@
-"""Samplers (tasks/sample/_samplers.py, tasks/sample/_sampling.py): one shared contract for every move,
-and posterior moments against closed forms.
+"""Samplers (tasks/sample/_metropolis.py, _ensemble.py, _sampling.py): one shared contract
+for every move, and posterior moments against closed forms.
 
 Outside references:
 * 2-D correlated Gaussian target: the exact mean and covariance are the target's own
