@@ -777,3 +777,33 @@ def test_scalars_in_array_fields_come_back_as_given(store: Path) -> None:
     assert_same([est], got_estimates, "estimates")
     assert type(got_estimates[0].sd) is float and type(got_values[3].value) is list
     assert check(store).ok
+
+
+def test_stored_config_qoi_axes_are_read_through_the_config_model():
+    """The report's QoI descriptions and axes come back from the stored config text as written
+    (a round trip); an entry the config model refuses is left out, not guessed at."""
+    import yaml
+
+    from winnow.tasks.store._report_data import _config_qoi_info
+
+    text = yaml.safe_dump(
+        {
+            "collect": {
+                "qoi": [
+                    {
+                        "name": "head",
+                        "units": "m",
+                        "description": "head at the well",
+                        "reader": {"csv": {"file": "o.csv", "column": "h", "row": "all"}},
+                        "axis": {"name": "t", "units": "s", "values": [0, 3600, 7200]},
+                    },
+                    {"name": "bad", "units": "m", "reader": {"xml": {"file": "o.xml"}}},
+                ]
+            }
+        }
+    )
+    descriptions, axes = _config_qoi_info(text)
+    assert descriptions == {"head": "head at the well"}
+    assert set(axes) == {"head"}
+    assert axes["head"]["name"] == "t" and axes["head"]["units"] == "s"
+    np.testing.assert_array_equal(axes["head"]["values"], [0.0, 3600.0, 7200.0])  # exact: ints

@@ -29,7 +29,7 @@ def _config_qoi_info(config_text: str) -> tuple[dict[str, str], dict[str, dict[s
     import yaml
     from pydantic import ValidationError
 
-    from winnow.tasks.config import ConfigError, QoISettings, parse_config
+    from winnow.tasks.config import AxisSpec, ConfigError, QoISettings, parse_config
 
     try:
         data = yaml.safe_load(config_text)
@@ -51,12 +51,10 @@ def _config_qoi_info(config_text: str) -> tuple[dict[str, str], dict[str, dict[s
     for q in qois:
         if q.axis is None:
             continue
-        entry = {k: q.axis[k] for k in ("name", "units") if isinstance(q.axis.get(k), str)}
-        if "values" in q.axis:
-            try:
-                entry["values"] = np.asarray(q.axis["values"], dtype=np.float64)
-            except (TypeError, ValueError):
-                pass
+        axis = AxisSpec.model_validate(q.axis)  # validated with the QoI: cannot fail here
+        entry: dict[str, Any] = {"name": axis.name, "units": axis.units}
+        if axis.values is not None:
+            entry["values"] = np.asarray(axis.values, dtype=np.float64)
         axes[q.name] = entry
     return descriptions, axes
 
