@@ -1,7 +1,7 @@
 """Run store section ``chain`` (with its diagnostics) and sampler ``checkpoints`` (private).
 
 Columns and attributes come from the tables ``CHAIN``, ``DIAGNOSTICS`` and
-``PARAMETER_DIAGNOSTICS`` of :mod:`._store_columns`; layout in ``docs/store-layout.md``.
+``PARAMETER_DIAGNOSTICS`` of :mod:`._tables`; layout in ``docs/store-layout.md``.
 """
 
 from __future__ import annotations

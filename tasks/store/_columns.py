@@ -1,7 +1,7 @@
 """Declarative column tables of the run store: the machinery (private).
 
 Each record of ``records.py`` that the store holds has one :class:`Table` (they are in
-:mod:`._store_tables`): the
+:mod:`._tables`): the
 datasets (table columns, or datasets of the record's group) and attributes it is stored in,
 each with its name, codec (how a value is encoded and decoded), units and description, and
 the record fields it restores. Writing and reading are driven by these tables

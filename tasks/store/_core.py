@@ -6,12 +6,12 @@ dataset and attribute written. This module holds how a change is committed in on
 file) and how a store is opened, and gathers the layout of each section from the private
 modules named for what they hold:
 
-* ``_store_h5``: constants, errors, tagged JSON, dataset helpers;
-* ``_store_columns``, ``_store_tables``: the declarative column table of each record type
+* ``_h5``: constants, errors, tagged JSON, dataset helpers;
+* ``_columns``, ``_tables``: the declarative column table of each record type
   and the code that writes and reads records through them;
-* ``_store_provenance``: ``config``, ``inputs``, ``observations``, ``provenance``;
-* ``_store_chain``: ``chain`` with its diagnostics, and ``checkpoints``;
-* ``_store_selection``, ``_store_runs``, ``_store_results``: those sections.
+* ``_provenance``: ``config``, ``inputs``, ``observations``, ``provenance``;
+* ``_chain``: ``chain`` with its diagnostics, and ``checkpoints``;
+* ``_selection``, ``_runs``, ``_results``: those sections.
 """
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
 """HDF5 primitives of the run store (private): constants, errors, tagged JSON and the
 dataset helpers that give every dataset ``units``, ``description`` and ``sha256``.
 
-Every other ``_store_*`` module builds on these; ``docs/store-layout.md`` ("Conventions")
+Every other module of the store builds on these; ``docs/store-layout.md`` ("Conventions")
 documents what they write.
 """
 

@@ -1,7 +1,7 @@
 """Run store section ``results``: QoI values of every run and their estimates (private).
 
 Columns and attributes come from the tables ``QOI_VALUE`` and ``QOI_ESTIMATE`` of
-:mod:`._store_columns`; the values' flat data and the estimates' keyed arrays (quantiles,
+:mod:`._tables`; the values' flat data and the estimates' keyed arrays (quantiles,
 exceedance, uncertainty) are written here. Layout in ``docs/store-layout.md``.
 """
 

@@ -2,7 +2,7 @@
 (private).
 
 Columns come from the tables ``RUN_SPEC``, ``RUN_OUTCOME`` and ``ATTEMPT`` of
-:mod:`._store_columns`; the links between the tables (``outcome_row``, ``run_row``) are
+:mod:`._tables`; the links between the tables (``outcome_row``, ``run_row``) are
 written here. Layout in ``docs/store-layout.md``.
 """
 

@@ -1,6 +1,6 @@
 """Run store section ``selection`` (private).
 
-Attributes and datasets come from the table ``SELECTION`` of :mod:`._store_columns`; the
+Attributes and datasets come from the table ``SELECTION`` of :mod:`._tables`; the
 points (in the chain's units) and the genetic selector's population are written here. Layout
 in ``docs/store-layout.md``.
 """

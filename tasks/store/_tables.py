@@ -1,8 +1,8 @@
 """The column table of each record type the run store holds (private).
 
-One :class:`~._store_columns.Table` per record of ``records.py``: every dataset and attribute
+One :class:`~._columns.Table` per record of ``records.py``: every dataset and attribute
 the record is stored in, with its codec, units, description and the fields it restores.
-Writing and reading are driven by these tables (see :mod:`._store_columns`); ``KNOWN_FIELDS``
+Writing and reading are driven by these tables (see :mod:`._columns`); ``KNOWN_FIELDS``
 is derived from them. A field a table neither stores nor lists in ``linked`` goes to the
 record's ``extra_json`` column or attribute. Layout in ``docs/store-layout.md``.
 """
