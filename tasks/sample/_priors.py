@@ -181,7 +181,7 @@ class PriorSet:
         )
 
     # ---------------------------------------------------------------- the one pass
-    def transform_rows(self, u: np.ndarray) -> np.ndarray:
+    def transform_rows(self, u: np.ndarray, *, density: bool = True) -> np.ndarray:
         """The map to the user's units, its log-Jacobian and the log prior in one pass,
         laid out as the samplers keep their chains.
 
@@ -195,6 +195,9 @@ class PriorSet:
         ----------
         u : ndarray, shape (k, d)
             Rows in the unconstrained space (float64).
+        density : bool
+            False: leave the log prior column unset (for a caller that fills it with a
+            log posterior of its own).
 
         Returns
         -------
@@ -208,6 +211,8 @@ class PriorSet:
         rows[:, :d] = u
         x, log_jac, log_prior = rows[:, d : 2 * d], rows[:, 2 * d], rows[:, 2 * d + 1]
         self._map(u, x, log_jac)
+        if not density:
+            return rows
         self._density(x, log_prior)
         if not math.isfinite(np.add.reduce(rows[:, 2 * d :], axis=None)):
             # NaN u gives NaN x: no density there (outside the support, as in logpdf). The

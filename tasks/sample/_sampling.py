@@ -118,7 +118,7 @@ class _Target:
         sets it once for a LogPosterior; a plain function does not need it)."""
         if self.clean:  # the prior's map, density and Jacobian in one pass
             return self.f.rows_at_unconstrained(u)  # type: ignore[attr-defined]
-        rows = self.ps.transform_rows(u)
+        rows = self.ps.transform_rows(u, density=False)
         d = self.ps.d
         x = np.ascontiguousarray(rows[:, d : 2 * d])  # a copy: the user's function may write
         lp = np.asarray(self.f(x), dtype=np.float64)
