@@ -195,7 +195,7 @@ def test_registered_under_prefect_collections():
 def test_core_modules_do_not_import_prefect():
     code = (
         "import sys, winnow.tasks.thin, winnow.tasks.sample, winnow.tasks.dispatch, "
-        "winnow.tasks.collect, winnow.tasks.store, winnow.tasks.config, winnow.tasks.stages; "
+        "winnow.tasks.collect, winnow.tasks.store, winnow.tasks.config, winnow.tasks.preflight; "
         "print(sorted(m for m in sys.modules if m.split('.')[0] == 'prefect'))"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
