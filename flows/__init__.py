@@ -14,4 +14,9 @@ _os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "90")
 _os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 _os.environ.setdefault("DO_NOT_TRACK", "1")
 
+# failed solver tasks no longer log "NoneType: None" (see flows/_logs.py)
+from winnow.flows._logs import drop_empty_tracebacks as _drop_empty_tracebacks  # noqa: E402
+
+_drop_empty_tracebacks()
+
 __all__: list[str] = []

@@ -165,6 +165,20 @@ def _print_status(path: Path, revision: str | None, st: dict[str, Any]) -> None:
     from rich.table import Table
 
     console = Console()
+    gate = st.get("chain")
+    if gate is None:
+        console.print("No chain is stored yet: the study stopped before sampling ended.")
+    elif gate["passed"] is False:
+        console.print(
+            "The chain FAILED the convergence gate (sample.checks.on_failure: stop), so no "
+            "point was chosen and no solver run started. The failed chain is stored with "
+            "its diagnostics (the revision's chain section) for inspection; failed checks:",
+            style="bold red",
+            markup=False,
+            soft_wrap=True,
+        )
+        for message in gate["messages"]:
+            console.print(f"  {message}", markup=False, highlight=False, soft_wrap=True)
     counts = Table(title=f"Runs by state ({path}{', ' + revision if revision else ''})")
     counts.add_column("state")
     counts.add_column("runs", justify="right")

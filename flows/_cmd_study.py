@@ -6,7 +6,7 @@ import json
 import shlex
 import sys
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, NoReturn
 
 import typer
 
@@ -43,6 +43,15 @@ def _interval_text(h: dict, u: str) -> str:
     return f"[{_fmt(lo)}, {_fmt(hi)}] {u}"
 
 
+def _left_out_text(n_missing: int, unread: dict | None) -> str:
+    """``5 run(s) without a value (3 failed or not run, 2 unreadable)``."""
+    text = f"{n_missing} run(s) without a value"
+    if unread and unread["unread"]:
+        failed = n_missing - unread["unread"]
+        text += f" ({failed} failed or not run, {unread['unread']} unreadable)"
+    return text
+
+
 def _print_result(result) -> None:
     from rich.console import Console
     from rich.markup import escape
@@ -55,6 +64,12 @@ def _print_result(result) -> None:
     console.print(f"[bold]{result.revision}[/bold] of {Path(result.store).resolve()}: {state}")
     counts = ", ".join(f"{k} {v}" for k, v in sorted(result.counts.items()))
     console.print(f"solver runs: {counts}; reused from earlier runs: {result.reused}")
+    ran = getattr(result, "ran", {}) or {}
+    if ran:
+        from winnow.flows._study_end import reasons_text
+
+        console.print(escape(reasons_text(ran)), soft_wrap=True)
+    unread = getattr(result, "unread", {}) or {}
     for name, e in result.estimates.items():
         u = e["units"]
         h = e.get("headline")
@@ -97,8 +112,15 @@ def _print_result(result) -> None:
         for key, v in e["uncertainty"].items():
             table.add_row(UNCERTAINTY_LABELS.get(key, key), f"{_fmt(v)} {u}")
         if e["n_missing"]:
-            table.add_row("left out", f"{e['n_missing']} run(s) without a value")
+            table.add_row("left out", escape(_left_out_text(e["n_missing"], unread.get(name))))
         console.print(table)
+        lost = unread.get(name)
+        if lost and lost["unread"]:
+            console.print(
+                f"[yellow]{escape(name)}: {lost['unread']} of {lost['succeeded']} succeeded "
+                f"run(s) gave no value; first (run {escape(lost['first_run'])}): "
+                f"{escape(lost['first_reason'])}[/yellow]"
+            )
         if h and not h.get("reliable", True):
             console.print(f"[bold red]{escape(name)}: NOT RELIABLE[/bold red]")
             for flag in h.get("flags", []):
@@ -117,140 +139,166 @@ def _print_result(result) -> None:
     console.print(f"[dim]Caution: {escape(caution)}[/dim]")
 
 
-def register(app: typer.Typer) -> None:
-    @app.command("schema")
-    def schema() -> None:
-        """Print the JSON Schema of a study config."""
-        from winnow.tasks.config import config_schema
+def _expected_stops() -> tuple[type[BaseException], ...]:
+    """Ends of a study that are not bugs: one message, no traceback on the terminal."""
+    from winnow.flows._study_end import StudyFailed, StudyRefused
+    from winnow.tasks.sample import ConvergenceError
 
-        json.dump(config_schema(), sys.stdout, indent=2)
-        sys.stdout.write("\n")
+    return ConvergenceError, StudyFailed, StudyRefused
 
-    @app.command("run")
-    @guarded
-    def run(
-        config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
-        force: Annotated[
-            bool, typer.Option("--force", help="Replace an existing run store.")
-        ] = False,
-    ) -> None:
-        """Run a study end to end (or resume it): sample, thin, dispatch, collect.
 
-        Ctrl-C or SIGTERM stops it: running solvers are terminated and journalled, nothing
-        half-done is committed, and the same command resumes it.
-        """
-        # --force would start the study afresh, so the resume hint never repeats it
-        with interruptible(f"winnow run {shlex.quote(str(config))}"):
-            cfg, text = _load(config)
-            from winnow.tasks.preflight import preflight
-            from winnow.tasks.sample import ConvergenceError
+def _stopped(exc: BaseException, log) -> NoReturn:
+    """Print an expected stop's one-line message (and where its log is); exit 2 for a refusal
+    (nothing written), else 1."""
+    from winnow.flows._study_end import StudyRefused
 
-            base = config.resolve().parent
-            preflight(cfg, base)  # bad input is reported here, before anything is written
-            from winnow.flows.study import StudyFailed, study_flow
+    print(f"winnow: {'error: ' if isinstance(exc, StudyRefused) else ''}{exc}", file=sys.stderr)
+    if log.where():
+        print(f"winnow: {log.where()}", file=sys.stderr)
+    raise SystemExit(2 if isinstance(exc, StudyRefused) else 1) from None
 
+
+def _run(
+    config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
+    force: Annotated[bool, typer.Option("--force", help="Replace an existing run store.")] = False,
+) -> None:
+    """Run a study end to end (or resume it): sample, thin, dispatch, collect.
+
+    Ctrl-C or SIGTERM stops it: running solvers are terminated and journalled, nothing
+    half-done is committed, and the same command resumes it. Prefect's log, tracebacks
+    included, goes to STORE-logs/ beside the run store; the terminal shows it without them.
+    """
+    # --force would start the study afresh, so the resume hint never repeats it
+    with interruptible(f"winnow run {shlex.quote(str(config))}"):
+        cfg, text = _load(config)
+        from winnow.flows._logs import command_log
+        from winnow.tasks.config import resolve
+        from winnow.tasks.preflight import preflight
+
+        base = config.resolve().parent
+        preflight(cfg, base)  # bad input is reported here, before anything is written
+        from winnow.flows.study import study_flow
+
+        with command_log(resolve(config, cfg.store), "run") as log:
             try:
                 result = study_flow(
-                    cfg,
-                    base_dir=str(base),
-                    config_text=text,
-                    force=force,
-                    config_path=str(config),
+                    cfg, base_dir=str(base), config_text=text, force=force, config_path=str(config)
                 )
-            except (ConvergenceError, StudyFailed) as exc:  # expected ends, not bugs
-                print(f"winnow: {exc}", file=sys.stderr)
-                raise SystemExit(1) from None
-            _print_result(result)
+            except _expected_stops() as exc:
+                _stopped(exc, log)
+        _print_result(result)
 
-    @app.command("rerun")
-    @guarded
-    def rerun(
-        store: Annotated[Path, typer.Argument(help="Run store (HDF5) of the study.")],
-        replace: Annotated[
-            bool,
-            typer.Option(
-                "--replace",
-                help="Instead of running failed points again, run the best substitutes for "
-                "them given the surviving points.",
-            ),
-        ] = False,
-        extend: Annotated[
-            int,
-            typer.Option(
-                "--extend",
-                min=0,
-                help="Also add this many points, chosen to shrink the error most with the "
-                "earlier points kept, and run them.",
-            ),
-        ] = 0,
-    ) -> None:
-        """Run again only the failed, timed-out and unfinished runs of the latest revision."""
-        if not store.is_file():
-            raise UsageError(f"STORE: run store not found: {store}")
-        from winnow.tasks.store import check
 
-        report = check(store)  # also refuses a file that is not a run store (exit 2)
-        if not report.ok:
-            raise UsageError(
-                f"STORE: {store} is damaged; see `winnow check {store}`:\n  "
-                + "\n  ".join(report.problems)
-            )
-        from winnow.flows.rerun import rerun_flow
+def _rerun(
+    store: Annotated[Path, typer.Argument(help="Run store (HDF5) of the study.")],
+    replace: Annotated[
+        bool,
+        typer.Option(
+            "--replace",
+            help="Instead of running failed points again, run the best substitutes for "
+            "them given the surviving points.",
+        ),
+    ] = False,
+    extend: Annotated[
+        int,
+        typer.Option(
+            "--extend",
+            min=0,
+            help="Also add this many points, chosen to shrink the error most with the "
+            "earlier points kept, and run them.",
+        ),
+    ] = 0,
+) -> None:
+    """Run again only the failed, timed-out and unfinished runs of the latest revision."""
+    if not store.is_file():
+        raise UsageError(f"STORE: run store not found: {store}")
+    from winnow.tasks.store import check
 
-        again = f"winnow rerun {shlex.quote(str(store))}" + (" --replace" if replace else "")
-        with interruptible(again):
-            _print_result(rerun_flow(str(store), replace=replace, extend=extend))
-
-    @app.command("validate")
-    @guarded
-    def validate(config: Annotated[Path, typer.Argument(help="Study config (YAML).")]) -> None:
-        """Check a study config, its files, model and templates without running anything."""
-        cfg, _ = _load(config)
-        from winnow.tasks.preflight import preflight
-
-        preflight(cfg, config.resolve().parent)
-        print(f"{config}: valid")
-
-    @app.command("serve")
-    @guarded
-    def serve(
-        config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
-        cron: Annotated[
-            str, typer.Option("--cron", help='Cron schedule, e.g. "0 6 * * *" (server time).')
-        ],
-        name: Annotated[
-            str | None, typer.Option("--name", help="Deployment name (default: the study name).")
-        ] = None,
-    ) -> None:
-        """Serve a study on a schedule; each run makes a new revision only when inputs changed."""
-        cfg, _ = _load(config)
-        from winnow.tasks.preflight import preflight
-
-        preflight(cfg, config.resolve().parent)
-        _check_cron(cron)
-        from prefect.settings import PREFECT_API_URL
-
-        if not PREFECT_API_URL.value():
-            raise UsageError(
-                "winnow serve needs a running Prefect server (the temporary one does not run "
-                "schedules): start one with `prefect server start` and set PREFECT_API_URL, e.g. "
-                "`prefect config set PREFECT_API_URL=http://127.0.0.1:4200/api`"
-            )
-        from prefect.client.schemas.objects import ConcurrencyLimitConfig
-
-        from winnow.flows.schedule import scheduled_study
-
-        # One run at a time: a study longer than its schedule period would otherwise start a
-        # second run at each tick, which fails on the run store's writer lock. ENQUEUE holds the
-        # next tick until the running one ends (it then finds the study up to date or resumes).
-        scheduled_study.serve(
-            name=name or f"{cfg.study.name}-schedule",
-            cron=cron,
-            global_limit=ConcurrencyLimitConfig(limit=1, collision_strategy="ENQUEUE"),
-            parameters={"config_path": str(config.resolve())},
-            description=cfg.study.description or None,
-            tags=["winnow", cfg.study.name],
+    report = check(store)  # also refuses a file that is not a run store (exit 2)
+    if not report.ok:
+        raise UsageError(
+            f"STORE: {store} is damaged; see `winnow check {store}`:\n  "
+            + "\n  ".join(report.problems)
         )
+    from winnow.flows._logs import command_log
+    from winnow.flows.rerun import rerun_flow, rerun_refusal
+
+    refusal = rerun_refusal(store)  # decided before anything is written (issue 17 item 1)
+    if refusal is not None:
+        raise UsageError(refusal)
+
+    again = f"winnow rerun {shlex.quote(str(store))}" + (" --replace" if replace else "")
+    with interruptible(again), command_log(store, "rerun") as log:
+        try:
+            result = rerun_flow(str(store), replace=replace, extend=extend)
+        except _expected_stops() as exc:
+            _stopped(exc, log)
+    _print_result(result)
+
+
+def _validate(config: Annotated[Path, typer.Argument(help="Study config (YAML).")]) -> None:
+    """Check a study config, its files, model and templates without running anything."""
+    cfg, _ = _load(config)
+    from winnow.tasks.preflight import preflight
+
+    preflight(cfg, config.resolve().parent)
+    print(f"{config}: valid")
+
+
+def _serve(
+    config: Annotated[Path, typer.Argument(help="Study config (YAML).")],
+    cron: Annotated[
+        str, typer.Option("--cron", help='Cron schedule, e.g. "0 6 * * *" (server time).')
+    ],
+    name: Annotated[
+        str | None, typer.Option("--name", help="Deployment name (default: the study name).")
+    ] = None,
+) -> None:
+    """Serve a study on a schedule; each run makes a new revision only when inputs changed."""
+    cfg, _ = _load(config)
+    from winnow.tasks.preflight import preflight
+
+    preflight(cfg, config.resolve().parent)
+    _check_cron(cron)
+    from prefect.settings import PREFECT_API_URL
+
+    if not PREFECT_API_URL.value():
+        raise UsageError(
+            "winnow serve needs a running Prefect server (the temporary one does not run "
+            "schedules): start one with `prefect server start` and set PREFECT_API_URL, e.g. "
+            "`prefect config set PREFECT_API_URL=http://127.0.0.1:4200/api`"
+        )
+    from prefect.client.schemas.objects import ConcurrencyLimitConfig
+
+    from winnow.flows.schedule import scheduled_study
+
+    # One run at a time: a study longer than its schedule period would otherwise start a
+    # second run at each tick, which fails on the run store's writer lock. ENQUEUE holds the
+    # next tick until the running one ends (it then finds the study up to date or resumes).
+    scheduled_study.serve(
+        name=name or f"{cfg.study.name}-schedule",
+        cron=cron,
+        global_limit=ConcurrencyLimitConfig(limit=1, collision_strategy="ENQUEUE"),
+        parameters={"config_path": str(config.resolve())},
+        description=cfg.study.description or None,
+        tags=["winnow", cfg.study.name],
+    )
+
+
+def _schema() -> None:
+    """Print the JSON Schema of a study config."""
+    from winnow.tasks.config import config_schema
+
+    json.dump(config_schema(), sys.stdout, indent=2)
+    sys.stdout.write("\n")
+
+
+def register(app: typer.Typer) -> None:
+    app.command("schema")(_schema)
+    app.command("run")(guarded(_run))
+    app.command("rerun")(guarded(_rerun))
+    app.command("validate")(guarded(_validate))
+    app.command("serve")(guarded(_serve))
 
 
 def _check_cron(cron: str) -> None:

@@ -20,6 +20,7 @@ from pathlib import Path
 import yaml
 from prefect import flow, get_run_logger
 
+from winnow.flows._study_end import StudyRefused, check_study_end, reasons_text
 from winnow.flows.study import StudyResult, _dispatch, _report, recorded_values, summarise
 from winnow.tasks.config import parse_config
 from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task
@@ -53,6 +54,13 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
     reassert_interrupt_handlers()  # SIGTERM stops the rerun as Ctrl-C does (see _cli_common)
     log = get_run_logger()
     store_path = Path(store).resolve()
+    refusal = rerun_refusal(store_path)
+    if refusal is not None:
+        raise StudyRefused(refusal)
+    for note in changed_inputs(store_path)[1]:
+        log.warning(
+            "input changed since the revision was run (%s); runs that succeeded are kept", note
+        )
     note_progress(stage="the start of the rerun", store=store_path)
     with RunStore.open_for_write(store_path) as w:
         rev = w.latest_revision()
@@ -97,6 +105,7 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
             todo_new = new_specs
         else:
             todo_new = []
+        ran: dict[str, str] = {}  # run id -> why it ran now
         if not pending:
             log.info("%s %s: every run already succeeded; nothing to rerun", store_path, rev)
         elif not replace:
@@ -109,6 +118,10 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
                 [s for s in specs if s.run_id in pending and s.run_id not in new_ids],
             )
             log.info("rerunning %d run(s) with their recorded decks", len(todo))
+            ran = {
+                s.run_id: f"{outcomes[s.run_id].state} before" for s in todo if s.run_id in outcomes
+            }
+            ran.update({s.run_id: "added point" for s in todo if s.run_id not in outcomes})
             outcomes.update(_dispatch(config, base, todo, w.successful_runs_by_key(), log))
         else:
             positions = [
@@ -129,6 +142,7 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
             )
             w.write_selection(rev, new_sel)
             outcomes.update(_dispatch(config, base, new_specs, w.successful_runs_by_key(), log))
+            ran = {s.run_id: "substitute for a point that did not succeed" for s in new_specs}
             for k in positions:
                 old = _spec_of_point(specs, int(selection.indices[k]))
                 o = outcomes[old.run_id]
@@ -157,10 +171,60 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
             recorded=recorded_values(w, outcomes.values()),
         )
         w.write_results(rev, values, estimates)
-    result = summarise(store_path, rev, in_selection, outcomes, estimates)
+    result = summarise(store_path, rev, in_selection, outcomes, estimates, values=values)
     result.report = str(_report(store_path, rev, config.study.name))
     result.caution = config.study.caution
+    result.ran = ran
+    if ran:
+        log.info("rerun: %s", reasons_text(ran))
+    check_study_end(result, config.study.name, store_path, again="winnow run CONFIG")
     return result
+
+
+#: inputs of a revision that are part of every run key (deck templates, staged copies)
+_KEYED_INPUTS = ("template", "copy")
+
+
+def changed_inputs(store: str | Path) -> tuple[list[str], list[str]]:
+    """Input files of the latest revision that changed since it was recorded.
+
+    Returns ``(keyed, other)`` as ``"name: path"`` strings: ``keyed`` are deck templates and
+    staged copies (part of every run key, so a rerun would not repeat the recorded decks),
+    ``other`` the rest (observations, model sources, solver scripts in the config's folder).
+    A file that is gone counts as changed.
+    """
+    from winnow.tasks.store import RunStore, hash_file
+
+    with RunStore.open_read(store) as r:
+        rev = r.latest_revision()
+        details = r.read_input_details(rev) if rev else {}
+    keyed, other = [], []
+    for name, d in details.items():
+        p = Path(d["path"])
+        now = hash_file(p) if p.is_file() else None
+        if now != d["sha256"]:
+            in_keys = name.rstrip("0123456789") in _KEYED_INPUTS  # template0, copy1, ...
+            (keyed if in_keys else other).append(f"{name}: {p}")
+    return keyed, other
+
+
+def rerun_refusal(store: str | Path) -> str | None:
+    """Why ``winnow rerun STORE`` must refuse (before anything is written), or None.
+
+    A rerun repeats failed runs with their recorded decks; when a deck template or staged
+    input changed since, it cannot, and ``winnow run CONFIG`` is the way on: a new revision
+    that keeps every run whose decks did not change and runs the others, saying why.
+    """
+    keyed, _ = changed_inputs(store)
+    if not keyed:
+        return None
+    return (
+        f"rerun: the deck templates or staged inputs changed since the latest revision was "
+        f"run ({'; '.join(keyed)}), so its failed runs cannot be repeated as recorded. "
+        "Nothing was written. To continue after a template or input fix, run `winnow run "
+        "CONFIG`: it makes a new revision that keeps every finished run whose decks did not "
+        "change, runs the others and lists which and why"
+    )
 
 
 def _rerender(config, base: Path, chain, selection, todo: list[RunSpec]) -> list[RunSpec]:

@@ -10,6 +10,7 @@ with changed inputs (new observations, an edited config) creates a new revision;
 whose deck hash and solver command match a success in any revision are reused.
 """
 
+import dataclasses
 import importlib.util
 import time
 from dataclasses import dataclass, field
@@ -25,10 +26,23 @@ from prefect.artifacts import (
 )
 from prefect.runtime import flow_run
 
+from winnow.flows._study_end import (
+    StudyFailed,
+    check_study_end,
+    earlier_runs,
+    reasons_text,
+    run_reasons,
+    unread_values,
+)
 from winnow.tasks.config import StudyConfig, config_hash, resolve
 from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task, sample_task, thin_stage_task
 from winnow.tasks.records import RunOutcome
-from winnow.tasks.sample import observation_columns, read_observations
+from winnow.tasks.sample import (
+    ConvergenceError,
+    convergence_gate,
+    observation_columns,
+    read_observations,
+)
 
 __all__ = [
     "StudyFailed",
@@ -39,10 +53,6 @@ __all__ = [
     "study_tags",
     "summarise",
 ]
-
-
-class StudyFailed(RuntimeError):
-    """A study that ran to the end without one successful run (everything is recorded)."""
 
 
 @dataclass
@@ -57,6 +67,10 @@ class StudyResult:
     report: str = ""
     up_to_date: bool = False
     caution: str = ""
+    #: per QoI, succeeded runs whose value could not be read (see ``unread_values``)
+    unread: dict[str, dict[str, Any]] = field(default_factory=dict)
+    #: run id -> why it ran in this flow run (see ``run_reasons``); reused runs are not in it
+    ran: dict[str, str] = field(default_factory=dict)
 
 
 def _module_file(spec: str | None, search: Path) -> Path | None:
@@ -81,7 +95,8 @@ def _module_file(spec: str | None, search: Path) -> Path | None:
 
 
 def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
-    """Input files whose content defines a revision: observations, templates, model sources."""
+    """Input files whose content defines a revision: observations, templates, staged inputs,
+    model sources and solver scripts in the config's folder."""
     here = base_dir / "x"
     files: dict[str, Path] = {}
     s = config.sample
@@ -103,6 +118,13 @@ def study_inputs(config: StudyConfig, base_dir: Path) -> dict[str, Path]:
         src = _module_file(q.cheap_qoi, search)
         if src is not None:
             files[f"cheap_qoi.{q.name}"] = src
+    # a solver script the command names in the config's folder ({config_dir}/solver.py): not
+    # part of any run key (a fix to it keeps the finished runs) but of the revision's record
+    root = Path(base_dir).resolve()
+    for i, arg in enumerate(config.dispatch.command):
+        p = Path(arg)
+        if p.is_absolute() and p.is_file() and root in p.resolve().parents:
+            files[f"command{i}"] = p
     return files
 
 
@@ -263,20 +285,29 @@ def study_flow(
         # ---- sample ------------------------------------------------------------------
         if "chain" in done:
             chain = store.read_chain(rev)
+            # a stored chain that failed the gate (issue 17 item 12) stops again, unsampled
+            convergence_gate(chain, config.sample.checks.on_failure)
         else:
             note_progress(stage="sampling (it resumes from its last checkpoint)")
 
             def checkpoint(state: dict[str, Any]) -> None:
                 store.save_checkpoint(rev, "sample", state)
 
-            chain = sample_task(
-                config,
-                base,
-                revision=rev,
-                progress=_StageProgress(config.study.name, "sample", log),
-                checkpoint=checkpoint,
-                resume=store.load_checkpoint(rev, "sample"),
-            )
+            try:
+                chain = sample_task(
+                    config,
+                    base,
+                    revision=rev,
+                    progress=_StageProgress(config.study.name, "sample", log),
+                    checkpoint=checkpoint,
+                    resume=store.load_checkpoint(rev, "sample"),
+                )
+            except ConvergenceError as exc:
+                # stored with its failing diagnostics, for `winnow status` and inspection
+                if exc.chain is not None:
+                    store.write_chain(rev, exc.chain)
+                    store.clear_checkpoint(rev, "sample")
+                raise
             store.write_chain(rev, chain)
             store.clear_checkpoint(rev, "sample")
         _log_chain(log, chain, stored="chain" in done)
@@ -300,11 +331,15 @@ def study_flow(
         if "runs" in done and "results" in done:
             _, stored = store.read_runs(rev)
             outcomes = {o.run_id: o for o in stored}
-            up_to_date = True
+            up_to_date, ran = True, {}
         else:
             up_to_date = False
             outcomes = _dispatch(config, base, specs, store.successful_runs_by_key(), log)
             store.write_runs(rev, specs, [outcomes[s.run_id] for s in specs])
+            # which runs ran and why (new point, failed before, decks changed since rN)
+            ran = run_reasons(specs, outcomes, earlier_runs(store, rev))
+            if ran:
+                log.info("dispatch: %s", reasons_text(ran))
 
         # ---- collect ----------------------------------------------------------------------
         if "results" in done:
@@ -325,22 +360,28 @@ def study_flow(
         _log_estimates(log, estimates, stored="results" in done)
 
     note_progress(stage="writing the report (every stage is committed)")
-    result = summarise(store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date)
+    result = summarise(
+        store_path, rev, specs, outcomes, estimates, up_to_date=up_to_date, values=values
+    )
     result.report = str(_report(store_path, rev, config.study.name))
     result.caution = config.study.caution
-    counts = result.counts
-    if counts.get("succeeded", 0) == 0:
-        raise StudyFailed(
-            f"study {config.study.name} {rev}: no run succeeded ({counts}); every outcome is "
-            f"recorded in {store_path} -- see `winnow status {store_path}`"
-        )
+    result.ran = ran
+    check_study_end(result, config.study.name, store_path, again="winnow run CONFIG")
     return result
 
 
 def summarise(
-    store_path: Path, rev: str, specs, outcomes, estimates, *, up_to_date: bool = False
+    store_path: Path,
+    rev: str,
+    specs,
+    outcomes,
+    estimates,
+    *,
+    up_to_date: bool = False,
+    values=(),
 ) -> StudyResult:
-    """Counts of the chosen points' run states, reuse and estimates of one revision."""
+    """Counts of the chosen points' run states, reuse, estimates and unread values of one
+    revision (``values``: its QoIValue records)."""
     counts: dict[str, int] = {}
     chosen = [outcomes[s.run_id] for s in specs if s.run_id in outcomes]
     for o in chosen:
@@ -352,6 +393,9 @@ def summarise(
         reused=sum(1 for o in chosen if o.reused_from),
         estimates={e.name: _estimate_summary(e) for e in estimates},
         up_to_date=up_to_date,
+        unread=unread_values(
+            values, {s.run_id: outcomes[s.run_id] for s in specs if s.run_id in outcomes}
+        ),
     )
 
 
@@ -417,6 +461,11 @@ def _dispatch(
     note_progress(stage="dispatch", specs=specs)  # what an interrupt report counts
     outcomes = _dispatch_all(config, base, specs, known, log)
     note_progress(specs=None)
+    # A success journalled in its own folder by an earlier revision (same point, same key) is
+    # a reuse too: it says so, and the summary counts it as reused, not as run.
+    for rid, o in outcomes.items():
+        if o.state == "succeeded" and not o.reused_from and o.key in known:
+            outcomes[rid] = dataclasses.replace(o, reused_from=known[o.key])
     return outcomes
 
 

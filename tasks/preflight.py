@@ -44,6 +44,23 @@ def _check_creatable(field: str, path: Path, *, is_dir: bool) -> None:
         raise InputError(f"{field}: cannot create {path}: {parent} is not writable")
 
 
+def _check_staged_files(d, template_root: Path) -> None:
+    """Every template and input file exists (a linked input may be a folder)."""
+    for i, rel in enumerate(d.templates):
+        if not (template_root / rel).is_file():
+            raise FileNotFoundError(
+                f"dispatch.templates[{i}]: file not found: {template_root / rel}"
+            )
+    for i, f in enumerate(d.inputs):
+        found = (template_root / f.file).is_file() or (
+            f.stage == "link" and (template_root / f.file).is_dir()  # a linked folder
+        )
+        if not found:
+            raise FileNotFoundError(
+                f"dispatch.inputs[{i}].file: file not found: {template_root / f.file}"
+            )
+
+
 def preflight(config: StudyConfig, base_dir: Path) -> None:
     """Check a study's files, model, templates and command without writing anything.
 
@@ -105,19 +122,7 @@ def preflight(config: StudyConfig, base_dir: Path) -> None:
     decks, template_root = deck_spec(config, base_dir)
     if not template_root.is_dir():
         raise FileNotFoundError(f"dispatch.template_dir: folder not found: {template_root}")
-    for i, rel in enumerate(d.templates):
-        if not (template_root / rel).is_file():
-            raise FileNotFoundError(
-                f"dispatch.templates[{i}]: file not found: {template_root / rel}"
-            )
-    for i, f in enumerate(d.inputs):
-        found = (template_root / f.file).is_file() or (
-            f.stage == "link" and (template_root / f.file).is_dir()  # a linked folder
-        )
-        if not found:
-            raise FileNotFoundError(
-                f"dispatch.inputs[{i}].file: file not found: {template_root / f.file}"
-            )
+    _check_staged_files(d, template_root)
     # Render one trial deck (prior midpoint) into a scratch folder: undefined names, syntax
     # errors and paths escaping the run folder are reported now, before the study starts.
     import tempfile

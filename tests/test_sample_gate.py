@@ -223,16 +223,17 @@ def test_cli_run_stops_before_thinning_and_writes_only_the_revision(tmp_path, pr
         assert res.exit_code == 1, (attempt, res.output, res.exception)
         assert "winnow: the chain did not converge; no costly run was started" in res.stderr
         _assert_names_value_and_threshold(res.stderr, _expected_failures("rhat", draws))
-        # new_revision's sections only: no chain, selection, runs or results (imported
-        # chain: no observations, no sampler checkpoint)
-        assert _sections(tmp_path / "study.h5") == {"config", "inputs", "provenance"}
+        # new_revision's sections and the failed chain, stored for inspection (issue 17
+        # item 12): no selection, runs or results (imported chain: no observations, no
+        # sampler checkpoint)
+        assert _sections(tmp_path / "study.h5") == {"config", "inputs", "provenance", "chain"}
         assert not (tmp_path / "runs").exists()  # no deck rendered
         assert calls(tmp_path) == []  # no solver started
         assert check(tmp_path / "study.h5").ok
 
 
 @pytest.mark.slow
-def test_flow_stops_a_sampler_study_and_keeps_its_checkpoint(tmp_path, prefect_harness):
+def test_flow_stops_a_sampler_study_and_keeps_its_failed_chain(tmp_path, prefect_harness):
     # 4 chains x 600 draws (300 kept): bulk ESS <= 1200 log10 1200 = 3695 < 5000 (closed
     # form, module notes). The sampler checkpoints at iteration 500 (sampling.sample's
     # checkpoint_every default).
@@ -247,16 +248,18 @@ def test_flow_stops_a_sampler_study_and_keeps_its_checkpoint(tmp_path, prefect_h
     text = path.read_text()
     cfg = _config(path)
     messages = []
-    for _ in range(2):  # again: resumes r0001 from its checkpoint, same chain, same verdict
+    for _ in range(2):  # again: resumes r0001 from its stored chain, same verdict
         with pytest.raises(ConvergenceError) as err:
             study_flow(cfg, base_dir=str(tmp_path), config_text=text, config_path=str(path))
         messages.append(str(err.value))
-        assert _sections(tmp_path / "study.h5") == {
+        # the failed chain is stored for inspection (issue 17 item 12); its sampler
+        # checkpoint is cleared once the chain is written
+        assert _sections(tmp_path / "study.h5") - {"checkpoints"} == {
             "config",
             "inputs",
             "provenance",
             "observations",
-            "checkpoints",  # left by the stopped sampler (cleared only after write_chain)
+            "chain",
         }
         assert not (tmp_path / "runs").exists()
     assert messages[0] == messages[1]

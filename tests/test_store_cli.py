@@ -170,7 +170,7 @@ def test_status_json_shape(two_revisions: tuple[Path, Path]) -> None:
     res = runner.invoke(app, ["status", str(p), "--json", "--revision", "r0001"])
     assert res.exit_code == 0, res.output
     st = json.loads(res.stdout)
-    assert set(st) == {"counts", "runs"}
+    assert set(st) == {"counts", "runs", "chain"}
     assert st["counts"] == {
         "succeeded": 2,
         "failed": 1,

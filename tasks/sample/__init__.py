@@ -41,6 +41,7 @@ from ._sampling import (
 from ._stage import (
     ConvergenceError,
     Observations,
+    convergence_gate,
     observation_columns,
     read_observations,
     sample_stage,
@@ -48,6 +49,7 @@ from ._stage import (
 
 __all__ = [
     "ConvergenceError",
+    "convergence_gate",
     "DEFAULT_THRESHOLDS",
     "DISTS",
     "LIKELIHOODS",

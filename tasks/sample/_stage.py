@@ -20,7 +20,31 @@ from winnow.tasks.records import (
 
 
 class ConvergenceError(RuntimeError):
-    """The chain failed its convergence thresholds; the study stops before thinning."""
+    """The chain failed its convergence thresholds; the study stops before thinning.
+
+    ``chain`` is the chain that failed (with its diagnostics), so that it can be stored and
+    inspected.
+    """
+
+    def __init__(self, message: str, chain: Chain | None = None) -> None:
+        super().__init__(message)
+        self.chain = chain
+
+    def __reduce__(self):  # picklable with its chain (the default passes only the message)
+        return type(self), (str(self), self.chain)
+
+
+def convergence_gate(chain: Chain, on_failure: str) -> None:
+    """Raise :class:`ConvergenceError` when the chain failed its thresholds and
+    ``on_failure`` (``sample.checks.on_failure``) is ``"stop"``."""
+    d = chain.diagnostics
+    if d is not None and not d.passed and on_failure == "stop":
+        raise ConvergenceError(
+            "the chain did not converge; no costly run was started:\n  "
+            + "\n  ".join(d.messages)
+            + "\nRun longer chains, or set sample.checks.on_failure: warn to go on anyway.",
+            chain=chain,
+        )
 
 
 # --------------------------------------------------------------------------------------------
@@ -199,13 +223,7 @@ def sample_stage(
             resume=resume,
             thresholds=_thresholds(config),
         )
-    d = chain.diagnostics
-    if d is not None and not d.passed and s.checks.on_failure == "stop":
-        raise ConvergenceError(
-            "the chain did not converge; no costly run was started:\n  "
-            + "\n  ".join(d.messages)
-            + "\nRun longer chains, or set sample.checks.on_failure: warn to go on anyway."
-        )
+    convergence_gate(chain, s.checks.on_failure)
     return chain
 
 

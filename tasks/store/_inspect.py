@@ -232,16 +232,23 @@ def status(path: str | Path, revision: str | int | None = None) -> dict[str, Any
         counts as ``not_run``. For a run that ran and did not succeed, ``stderr_tail`` holds
         the last 10 lines of its last attempt's stderr as stored and
         ``stderr_log`` the path of that attempt's full stderr in the run folder; otherwise
-        they are ``""`` and ``None``.
+        they are ``""`` and ``None``. ``chain`` is ``None`` before a chain is stored, else
+        ``{"passed": bool or None (no diagnostics), "messages": [failed checks]}``: a chain
+        that failed the convergence gate is stored and the study stopped before thinning.
     """
     with _open_read(path) as r:
         rev = r.latest_revision() if revision is None else revision
         counts = dict.fromkeys(RUN_STATES, 0)
         runs: list[dict[str, Any]] = []
+        chain = None
+        if rev is not None and "chain" in r.sections(rev):  # sections() checks the name
+            d = r.read_chain(rev).diagnostics
+            chain = {
+                "passed": None if d is None else bool(d.passed),
+                "messages": [] if d is None else list(d.messages),
+            }
         if rev is None or "runs" not in r.sections(rev):
-            if rev is not None:
-                r.sections(rev)  # validates the revision name
-            return {"counts": counts, "runs": runs}
+            return {"counts": counts, "runs": runs, "chain": chain}
         specs, outcomes = r.read_runs(rev)
     by_id = {o.run_id: o for o in outcomes}
     for s in specs:
@@ -264,7 +271,7 @@ def status(path: str | Path, revision: str | int | None = None) -> dict[str, Any
                 "stderr_log": log,
             }
         )
-    return {"counts": counts, "runs": runs}
+    return {"counts": counts, "runs": runs, "chain": chain}
 
 
 def _attempt_dict(a: Any, run_dir: str | Path, last: int) -> dict[str, Any]:
