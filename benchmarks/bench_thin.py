@@ -53,11 +53,15 @@ import time  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from winnow.tasks.thin import thin  # noqa: E402
-from winnow.tasks.thin._features import draw_feature_map, mean_embedding  # noqa: E402
-from winnow.tasks.thin._kernels import get_kernel, median_heuristic  # noqa: E402
-from winnow.tasks.thin._mmd import ExactMMD  # noqa: E402
-from winnow.tasks.thin._weights import solve_simplex_qp  # noqa: E402
+from winnow.tasks.thin import (  # noqa: E402
+    ExactMMD,
+    draw_feature_map,
+    get_kernel,
+    mean_embedding,
+    median_heuristic,
+    solve_simplex_qp,
+    thin,
+)
 
 
 # ------------------------------------------------------------------------------- targets

@@ -33,14 +33,14 @@ from concurrent.futures import ThreadPoolExecutor  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from winnow.tasks.thin import _features as _features  # noqa: E402
-from winnow.tasks.thin._features import (
+from winnow.tasks.thin import (  # noqa: E402
+    PHASE_ROWS,
     draw_feature_map,
     features_of_rows,
+    get_kernel,
     mean_embedding,
     one_blas_thread,
 )
-from winnow.tasks.thin._kernels import get_kernel  # noqa: E402
 
 D = 4096
 CHUNK = 512  # rows per chunk, as thin() picks for D = 4096 (16 MB of float32 features)
@@ -122,21 +122,16 @@ def bench_dimension(d: int, n: int, repeats: int, rng: np.random.Generator) -> N
     t1, t2 = (best(lambda w=w: numpy_mean_embedding(fmap, x, counts, w), repeats) for w in (1, 2))
     print(f"   {'mean embedding, numpy':<36} {t1 * per:9.2f} {t2 * per:10.2f}")
     ref = numpy_mean_embedding(fmap, x, counts, 1) / (n * np.sqrt(D))
-    default_rows = _features._PHASE_ROWS
 
-    def compiled(w: int) -> np.ndarray:
-        return mean_embedding(fmap, x, None, counts, chunk_size=CHUNK, workers=w)
+    def compiled(w: int, rows: int) -> np.ndarray:
+        return mean_embedding(fmap, x, None, counts, chunk_size=CHUNK, workers=w, phase_rows=rows)
 
-    try:
-        for rows in (16, 32, 64, CHUNK):
-            _features._PHASE_ROWS = rows
-            star = " *" if rows == default_rows else ""
-            t1, t2 = (best(lambda w=w: compiled(w), repeats) for w in (1, 2))
-            diff = np.abs(compiled(2) - ref).max()
-            print(f"   {f'mean embedding, compiled, {rows} rows{star}':<36} {t1 * per:9.2f} "
-                  f"{t2 * per:10.2f}   max |diff| to numpy {diff:.1e}")  # fmt: skip
-    finally:
-        _features._PHASE_ROWS = default_rows
+    for rows in (16, 32, 64, CHUNK):
+        star = " *" if rows == PHASE_ROWS else ""
+        t1, t2 = (best(lambda w=w, r=rows: compiled(w, r), repeats) for w in (1, 2))
+        diff = np.abs(compiled(2, rows) - ref).max()
+        print(f"   {f'mean embedding, compiled, {rows} rows{star}':<36} {t1 * per:9.2f} "
+              f"{t2 * per:10.2f}   max |diff| to numpy {diff:.1e}")  # fmt: skip
     part = x[: n // 4]
     t_np = best(lambda: numpy_features(fmap, part), repeats)
     t_c = best(lambda: features_of_rows(fmap, part, None, chunk_size=CHUNK), repeats)

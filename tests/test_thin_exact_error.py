@@ -65,7 +65,7 @@ def test_thin_reports_the_exact_error(chain):
     assert sel.mmd_exact_rows == 1000
     assert err["mmd_sq_se"] > 0 and err["mmd_low"] <= sel.mmd_exact <= err["mmd_high"]
     assert "Gretton" in err["rule"]
-    assert sel.report["mmd_exact_max_rows"] == 1000
+    assert sel.report["settings"]["exact_max_rows"] == 1000
     whole = thin(chain, 20, n_features=128, exact_max_rows=10_000, rng=3)
     assert whole.report["mmd_exact_error"]["mmd_sq_se"] == 0.0
     # the same selection judged on the whole chain lies in the stated interval

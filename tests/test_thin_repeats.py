@@ -102,7 +102,8 @@ def test_greedy_keeps_the_better_of_corrective_and_herding_sets():
     # oracle: kernel herding written directly on the feature Gram matrix (Chen, Welling &
     # Smola 2010, Eq. 4) and the feature-space MMD |w Phi - mu| of each set with its optimal
     # simplex weights; the greedy selector must return the better of the two greedy sets
-    from winnow.tasks.thin._selectors import GreedySelector, Problem, _corrective_positions
+    from winnow.tasks.thin._greedy import GreedySelector, _corrective_positions
+    from winnow.tasks.thin._selector import Problem
     from winnow.tasks.thin._weights import optimal_weights
 
     kept = set()

@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 
 from winnow.tasks.records import Chain, Selection
 from winnow.tasks.thin import SELECTORS, disjoint, extend, replace, thin
-from winnow.tasks.thin._selectors import GreedyState, Problem, corrective_scores
+from winnow.tasks.thin._greedy import GreedyState, corrective_scores
+from winnow.tasks.thin._selector import Problem
 
 FAST = {"n_features": 128, "exact_max_rows": 5000}
 GENETIC_FAST = {"population": 8, "generations": 6}
@@ -190,12 +191,16 @@ def test_chain_record_accepted():
         ({"budget": 10_000}, ValueError, "budget must be <= the number of distinct"),
         ({"kernel": "cosine"}, ValueError, "kernel must be one of"),
         ({"bandwidth": float("inf")}, ValueError, "bandwidth must be finite"),
-        ({"bandwidth": -1.0}, ValueError, "bandwidth must be finite and > 0, got -1.0"),
+        ({"bandwidth": -1.0}, ValueError, r"bandwidth must be > 0.0, got -1.0"),
         ({"method": "annealing"}, ValueError, "method must be one of"),
         ({"weights": "equal"}, ValueError, "weights must be one of"),
         ({"feature_map": "fastfood"}, ValueError, "feature_map must be one of"),
-        ({"n_features": 0}, ValueError, "n_features must be >= 1"),
-        ({"n_features": "many"}, ValueError, "n_features must be 'auto'"),
+        ({"n_features": 0}, ValueError, "n_features must be a positive integer or 'auto', got 0"),
+        ({"features": 0}, ValueError, "features must be a positive integer or 'auto', got 0"),
+        ({"n_features": "many"}, ValueError, "n_features must be an integer or 'auto', got 'many'"),
+        ({"n_features": 64.0}, TypeError, "n_features must be an integer or 'auto', got 64.0"),
+        ({"precision": "half"}, ValueError, "precision must be one of 'single' or 'double'"),
+        ({"features_tol": 1.5}, ValueError, "features_tol must be < 1.0, got 1.5"),
         ({"nonfinite": "zero"}, ValueError, "nonfinite must be one of"),
         ({"generations": 3}, TypeError, "unknown option"),
     ],
@@ -274,7 +279,7 @@ def test_invariants_on_random_chains(n, d, reps, m_frac, method, rule, kernel, s
 
 def test_inherited_gram_equals_direct_product():
     # oracle: the Gram matrix computed directly, phi_s phi_s^T (numpy)
-    from winnow.tasks.thin._selectors import _inherited_gram
+    from winnow.tasks.thin._genetic import _inherited_gram
 
     rng = np.random.default_rng(12)
     phi = rng.standard_normal((40, 16))
@@ -304,7 +309,7 @@ def test_genetic_stops_after_patience_and_reports_generations(chain):
 
 def test_neighbours_match_brute_force():
     # oracle: nearest rows by sorting all Euclidean distances (numpy)
-    from winnow.tasks.thin._selectors import _Neighbours
+    from winnow.tasks.thin._genetic import _Neighbours
 
     rng = np.random.default_rng(4)
     coords = rng.standard_normal((300, 3))

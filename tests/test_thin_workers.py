@@ -9,8 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from winnow.tasks.thin import _engine as thinning
-from winnow.tasks.thin import extend, thin
+from winnow.tasks.thin import _auto, _run, extend, thin
 
 
 def _banana(n: int, seed: int) -> np.ndarray:
@@ -25,7 +24,7 @@ def recorded(monkeypatch):
     selector's matrix-vector products."""
     seen: dict[str, list[int]] = {"mean_embedding": [], "pool": [], "problem": []}
     real_mean, real_pool, real_problem = (
-        thinning.mean_embedding, thinning.ThreadPoolExecutor, thinning.Problem,
+        _run.mean_embedding, _auto.ThreadPoolExecutor, _run.Problem,
     )  # fmt: skip
 
     def mean_embedding(*args, **kwargs):
@@ -41,9 +40,9 @@ def recorded(monkeypatch):
         seen["problem"].append(out.workers)
         return out
 
-    monkeypatch.setattr(thinning, "mean_embedding", mean_embedding)
-    monkeypatch.setattr(thinning, "ThreadPoolExecutor", pool)
-    monkeypatch.setattr(thinning, "Problem", problem)
+    monkeypatch.setattr(_run, "mean_embedding", mean_embedding)
+    monkeypatch.setattr(_auto, "ThreadPoolExecutor", pool)
+    monkeypatch.setattr(_run, "Problem", problem)
     return seen
 
 
@@ -51,7 +50,7 @@ def recorded(monkeypatch):
 def test_workers_reach_every_threaded_step(recorded, workers):
     x = _banana(3000, seed=1)
     sel = thin(x, 8, rng=2, workers=workers, exact_max_rows=0)  # n_features="auto"
-    assert sel.report["workers"] == workers
+    assert sel.report["settings"]["workers"] == workers
     assert recorded["mean_embedding"] == [workers]
     # the auto feature count runs its 3 independent draws on at most 3 threads
     assert recorded["pool"] == [min(workers, 3)]
@@ -72,7 +71,7 @@ def test_result_does_not_depend_on_workers():
     three = thin(x, 10, rng=4, workers=3, exact_max_rows=0)
     np.testing.assert_array_equal(one.indices, three.indices)
     np.testing.assert_allclose(one.weights, three.weights, rtol=0, atol=1e-12)
-    assert one.report["workers"] == 1 and three.report["workers"] == 3
+    assert one.report["settings"]["workers"] == 1 and three.report["settings"]["workers"] == 3
 
 
 def test_bad_workers_refused():

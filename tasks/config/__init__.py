@@ -56,7 +56,16 @@ from ._sample import (
     SampleSettings,
 )
 from ._study import StudyConfig, StudySettings
-from ._thin import ThinSettings
+from ._thin import (
+    FeatureMapName,
+    KernelName,
+    MethodName,
+    SettingTypeError,
+    ThinOptions,
+    ThinSettings,
+    WeightsRule,
+    validate_settings,
+)
 
 __all__ = [
     "READERS",
@@ -71,12 +80,15 @@ __all__ = [
     "DaskRunner",
     "DaskSettings",
     "DispatchSettings",
+    "FeatureMapName",
     "FunctionReader",
     "Hdf5Reader",
     "ImportSettings",
     "InputFile",
     "JsonReader",
+    "KernelName",
     "LocalClusterSettings",
+    "MethodName",
     "ModelSettings",
     "ObservationSettings",
     "Parameter",
@@ -88,7 +100,10 @@ __all__ = [
     "SampleSettings",
     "StudyConfig",
     "StudySettings",
+    "SettingTypeError",
+    "ThinOptions",
     "ThinSettings",
+    "WeightsRule",
     "check_qoi_spec",
     "config_hash",
     "config_schema",
@@ -99,4 +114,5 @@ __all__ = [
     "parse_reader",
     "parse_config",
     "resolve",
+    "validate_settings",
 ]

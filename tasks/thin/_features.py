@@ -41,25 +41,26 @@ import contextlib
 import functools
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
-from typing import Literal
 
 import numpy as np
 from scipy import special
 
+from winnow.tasks.config import FeatureMapName
+from winnow.tasks.errors import InputError
+
 from ._kernels import Kernel
+from ._progress import Progress
 
 __all__ = [
     "FEATURE_MAPS",
     "FeatureMap",
-    "FeatureMapName",
     "draw_feature_map",
     "draw_unit_frequencies",
     "features_of_rows",
     "mean_embedding",
+    "one_blas_thread",
+    "PHASE_ROWS",
 ]
-
-FeatureMapName = Literal["rff", "orf", "qmc"]
-Progress = Callable[[int, int, str], None]
 
 
 def _gaussian_iid(n: int, d: int, rng: np.random.Generator) -> np.ndarray:
@@ -78,26 +79,49 @@ def _gaussian_orthogonal(n: int, d: int, rng: np.random.Generator) -> np.ndarray
     return np.concatenate(blocks, axis=0)[:n]
 
 
+def _clipped_uniforms(n: int, n_mix: int, rng: np.random.Generator) -> np.ndarray:
+    v = rng.random((n, n_mix))
+    np.clip(v, 1e-12, 1.0 - 1e-12, out=v)
+    return v
+
+
+def _rff_draws(d: int, n_mix: int, n: int, rng: np.random.Generator):
+    """Independent standard-normal directions (Rahimi & Recht 2007)."""
+    return _gaussian_iid(n, d, rng), _clipped_uniforms(n, n_mix, rng)
+
+
+def _orf_draws(d: int, n_mix: int, n: int, rng: np.random.Generator):
+    """Blockwise orthogonal directions (Yu et al. 2016)."""
+    return _gaussian_orthogonal(n, d, rng), _clipped_uniforms(n, n_mix, rng)
+
+
+def _qmc_draws(d: int, n_mix: int, n: int, rng: np.random.Generator):
+    """A scrambled Halton sequence through the inverse CDFs (Avron et al. 2016)."""
+    from scipy.stats import qmc
+
+    u = qmc.Halton(d + n_mix, scramble=True, seed=rng).random(n)
+    u = np.clip(u, 1e-12, 1.0 - 1e-12)  # keep the inverse CDFs finite
+    return special.ndtri(u[:, :d]), u[:, d:]
+
+
+#: the feature maps by name: ``draws(d, n_mix, n, rng) -> (g, v)``, ``n`` standard-normal
+#: directions ``g`` (n, d) and ``n_mix`` uniforms ``v`` (n, n_mix) per frequency, which the
+#: kernel turns into its frequencies (``Kernel.frequencies``)
+FEATURE_MAPS: dict[str, Callable[..., tuple[np.ndarray, np.ndarray]]] = {
+    "rff": _rff_draws,
+    "orf": _orf_draws,
+    "qmc": _qmc_draws,
+}
+
+
 def draw_unit_frequencies(
     kernel: Kernel, d: int, n: int, kind: FeatureMapName, rng: np.random.Generator
 ) -> np.ndarray:
     """Draw ``n`` frequencies of ``kernel`` at bandwidth 1, shape (n, d)."""
-    n_mix = kernel.n_mix(d)
-    if kind == "qmc":
-        from scipy.stats import qmc
-
-        u = qmc.Halton(d + n_mix, scramble=True, seed=rng).random(n)
-        u = np.clip(u, 1e-12, 1.0 - 1e-12)  # keep the inverse CDFs finite
-        g = special.ndtri(u[:, :d])
-        v = u[:, d:]
-    else:
-        g = (_gaussian_orthogonal if kind == "orf" else _gaussian_iid)(n, d, rng)
-        v = rng.random((n, n_mix))
-        np.clip(v, 1e-12, 1.0 - 1e-12, out=v)
+    if not isinstance(kind, str) or kind not in FEATURE_MAPS:
+        raise InputError(f"feature_map must be one of {sorted(FEATURE_MAPS)}, got {kind!r}")
+    g, v = FEATURE_MAPS[kind](d, kernel.n_mix(d), n, rng)
     return kernel.frequencies(g, v)
-
-
-FEATURE_MAPS: tuple[str, ...] = ("rff", "orf", "qmc")
 
 
 @dataclass(frozen=True)
@@ -209,7 +233,7 @@ def one_blas_thread() -> Iterator[None]:
 
 # rows of phases computed per product in the float32 mean-embedding pass: 32 rows of 4096
 # float32 phases are 512 kB, one core's L2 cache (benchmarks/bench_trig.py)
-_PHASE_ROWS = 32
+PHASE_ROWS = 32
 
 
 def _trig_module():
@@ -246,6 +270,7 @@ def mean_embedding(
     chunk_size: int,
     workers: int = 1,
     progress: Progress | None = None,
+    phase_rows: int = PHASE_ROWS,
 ) -> np.ndarray:
     """Weighted mean of the features of ``x[rows]``, streamed in chunks.
 
@@ -265,6 +290,9 @@ def mean_embedding(
         in float64. Chunk sums are added to a float64 total in chunk order.
     workers : int
         Threads computing chunks (the result is bit-identical for any number).
+    phase_rows : int
+        Rows of phases per product in the float32 pass (``PHASE_ROWS``: one core's L2
+        cache at D = 4096; ``benchmarks/bench_trig.py`` compares others).
 
     Returns
     -------
@@ -283,7 +311,7 @@ def mean_embedding(
         # theta (32, D) are ever stored, not the (n, 2 D) features
         _trig = _trig_module()
         weights = np.ascontiguousarray(counts, dtype=np.float32)
-        block = min(_PHASE_ROWS, rows_per_buf)
+        block = min(phase_rows, rows_per_buf)
         bufs = [np.empty((block, n_freq), dtype=np.float32) for _ in range(workers)]
     else:
         bufs = [np.empty((rows_per_buf, fmap.width), dtype=fmap.dtype) for _ in range(workers)]

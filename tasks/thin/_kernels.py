@@ -46,12 +46,9 @@ from winnow.tasks.errors import InputError
 __all__ = [
     "KERNELS",
     "Kernel",
-    "KernelName",
     "get_kernel",
     "median_heuristic",
 ]
-
-KernelName = Literal["gaussian", "laplace", "matern32", "matern52"]
 
 
 class Kernel(abc.ABC):

@@ -11,25 +11,11 @@ from winnow.tasks.records import (
 
 
 def thin_stage(config: StudyConfig, chain: Chain, *, progress: Progress | None = None) -> Selection:
-    """Choose ``config.budget`` weighted points of the chain by MMD; ``progress(done,
-    total, step)`` hears of every long step (see :func:`~winnow.tasks.thin.thin`)."""
-    from ._engine import thin
+    """Choose ``config.budget`` weighted points of the chain by MMD with the study's thin
+    settings (``config.thin``, passed whole); ``progress(done, total, step)`` hears of every
+    long step (see :func:`~winnow.tasks.thin.thin`)."""
+    from ._thin import thin
 
-    t = config.thin
     return thin(
-        chain.samples,
-        config.budget,
-        kernel=t.kernel,
-        bandwidth=t.bandwidth,
-        method=t.method,
-        weights=t.weights,
-        feature_map=t.feature_map,
-        n_features=t.features,
-        replace_unweighted=t.replace_unweighted,
-        exact_max_rows=t.exact_max_rows,
-        rng=config.study.seed,
-        progress=progress,
+        chain.samples, config.budget, settings=config.thin, rng=config.study.seed, progress=progress
     )
-
-
-# --------------------------------------------------------------------------------------------
