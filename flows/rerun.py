@@ -71,9 +71,12 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
                 "run the study with `winnow run CONFIG`"
             )
         text = w.read_config_text(rev)
-        config = parse_config(yaml.safe_load(text), source=f"{store_path} ({rev} config)")
         details = w.read_input_details(rev)
         base = Path(details["config"]["path"]).parent if "config" in details else Path.cwd()
+        # {config_dir} in the command is the config's folder, as when the study ran
+        config = parse_config(
+            yaml.safe_load(text), source=f"{store_path} ({rev} config)", config_dir=base
+        )
         chain = w.read_chain(rev)
         selection = w.read_selection(rev)
         if "runs" in done:
