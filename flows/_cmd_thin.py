@@ -3,15 +3,20 @@
 ``winnow thin CHAIN --budget M --out FILE`` reads ``.npy`` (n x d), ``.csv`` (header row of
 parameter names) or ``.h5``/``.hdf5`` (``--dataset PATH``), runs
 :func:`winnow.tasks.thin.thin` and writes ``FILE.json`` or ``FILE.csv`` (chosen by the
-suffix). Everything is validated before anything is written; an existing ``--out`` is kept
+suffix). The options of the thin settings are generated from the fields of
+:class:`winnow.tasks.config.ThinSettings` (their help is the field's description, their
+default the field's). Everything is validated before anything is written; an existing ``--out`` is kept
 unless ``--force``. Heavy modules (numpy, scipy, the thinning engine) are imported inside the
 command so that ``winnow --help`` stays fast.
 """
 
 from __future__ import annotations
 
+import inspect
+from collections.abc import Callable
+from inspect import Parameter
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any, Literal, get_args, get_origin
 
 import typer
 
@@ -82,14 +87,56 @@ def _write(out: Path, sel, names: tuple[str, ...], seed: int) -> None:
     tmp.replace(out)
 
 
-def _thin_default(name: str):
-    """A thin setting's default, read from the settings model (declared once there)."""
+# the option of a setting whose command-line name is not its field name (README, 0.1)
+_FLAGS = {"exact_max_rows": ("--exact-rows", "--exact-max-rows")}
+
+
+def _setting_option(name: str, field: Any) -> tuple[Any, Any]:
+    """The type (with its ``typer.Option``) and default of the option of one thin setting,
+    read from its field: Literal and mixed fields are text (checked by the model), the
+    choices of a Literal are listed in the help."""
+    annotation = field.annotation
+    args = [a for a in get_args(annotation) if a is not type(None)]
+    kind = annotation if annotation in (bool, int, float) else str
+    if len(args) == 1 and args[0] in (int, float):
+        kind = args[0] | None
+    help_text = field.description or ""
+    if get_origin(annotation) is Literal:
+        help_text += " One of: " + ", ".join(map(str, get_args(annotation))) + "."
+    flags = _FLAGS.get(name, ("--" + name.replace("_", "-"),))
+    if kind is bool:
+        flags = (f"{flags[0]}/--no-{flags[0].removeprefix('--')}",)
+    return Annotated[kind, typer.Option(*flags, help=help_text)], field.default
+
+
+def _settings_parameters() -> list[inspect.Parameter]:
+    """One keyword parameter per field of ThinSettings (the settings are declared there)."""
     from winnow.tasks.config import ThinSettings
 
-    return ThinSettings.model_fields[name].default
+    out = []
+    for name, field in ThinSettings.model_fields.items():
+        annotation, default = _setting_option(name, field)
+        out.append(
+            inspect.Parameter(name, Parameter.KEYWORD_ONLY, default=default, annotation=annotation)
+        )
+    return out
 
 
-_EXACT_ROWS_DEFAULT = _thin_default("exact_max_rows")
+def _option_names() -> dict[str, str]:
+    from winnow.tasks.config import ThinSettings
+
+    return {n: _FLAGS.get(n, ("--" + n.replace("_", "-"),))[0] for n in ThinSettings.model_fields}
+
+
+def _with_settings(func: Callable[..., None]) -> Callable[..., None]:
+    """``func(..., **settings)`` with a signature typer reads: its own parameters and one
+    option per thin setting."""
+    sig = inspect.signature(func, eval_str=True)
+    own = [p for p in sig.parameters.values() if p.kind is not p.VAR_KEYWORD]
+    params = own + _settings_parameters()
+    func.__signature__ = sig.replace(parameters=params)  # type: ignore[attr-defined]
+    func.__annotations__ = {p.name: p.annotation for p in params} | {"return": None}
+    return func
 
 
 def register(app: typer.Typer) -> None:
@@ -97,72 +144,32 @@ def register(app: typer.Typer) -> None:
 
     @app.command("thin")
     @guarded
+    @_with_settings
     def thin_command(
         chain: Annotated[Path, typer.Argument(help="Chain file: .npy, .csv or .h5/.hdf5.")],
         budget: Annotated[int, typer.Option("--budget", help="Number of points to choose.")],
         out: Annotated[Path, typer.Option("--out", help="Result file, .json or .csv.")],
-        kernel: Annotated[
-            str, typer.Option(help="gaussian, laplace, matern32 or matern52.")
-        ] = "gaussian",
-        method: Annotated[
-            str, typer.Option(help="greedy, swap, genetic, random or stride.")
-        ] = "greedy",
-        weights: Annotated[str, typer.Option(help="simplex (optimal) or uniform.")] = "simplex",
-        features: Annotated[
-            str, typer.Option(help="Number of random frequencies, or 'auto'.")
-        ] = "auto",
-        feature_map: Annotated[str, typer.Option(help="orf, rff or qmc.")] = "orf",
-        bandwidth: Annotated[
-            float | None, typer.Option(help="Kernel bandwidth (standardised units).")
-        ] = None,
         seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
         dataset: Annotated[
             str | None, typer.Option(help="Dataset path inside an HDF5 chain.")
         ] = None,
-        exact_rows: Annotated[
-            int, typer.Option(help="Rows used for the exact-kernel MMD check (0 skips it).")
-        ] = _EXACT_ROWS_DEFAULT,
         force: Annotated[bool, typer.Option(help="Overwrite an existing --out.")] = False,
         quiet: Annotated[bool, typer.Option(help="No progress bar.")] = False,
+        **settings: Any,
     ) -> None:
         """Choose BUDGET weighted points of CHAIN closest to it in MMD and write them."""
+        from winnow.tasks.config import ThinSettings, validate_settings
+
         _check_paths(chain, out, force, dataset)
-        n_features: int | str = "auto"
-        if features != "auto":
-            try:
-                n_features = int(features)
-            except ValueError:
-                raise UsageError(
-                    f"--features must be an integer or 'auto', got {features!r}"
-                ) from None
+        given = validate_settings(ThinSettings, settings, names=_option_names())
         from winnow.tasks.sample import read_chain_file
         from winnow.tasks.thin import thin
 
         data = read_chain_file(chain, dataset=dataset)
-        options = dict(
-            kernel=kernel, method=method, weights=weights, n_features=n_features,
-            feature_map=feature_map, bandwidth=bandwidth, exact_max_rows=exact_rows,
-        )  # fmt: skip
         if quiet:
-            sel = thin(data, budget, rng=seed, **options)
+            sel = thin(data, budget, rng=seed, settings=given)
         else:
-            from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
-
-            with Progress(
-                TextColumn("{task.description}"),
-                BarColumn(),
-                TextColumn("{task.completed}/{task.total}"),
-                TimeElapsedColumn(),
-                transient=True,
-            ) as bar:
-                tasks: dict[str, int] = {}
-
-                def progress(done: int, total: int, what: str) -> None:
-                    if what not in tasks:
-                        tasks[what] = bar.add_task(what, total=total)
-                    bar.update(tasks[what], completed=done, total=total)
-
-                sel = thin(data, budget, rng=seed, progress=progress, **options)
+            sel = _thin_with_bar(thin, data, budget, seed, given)
         _write(out, sel, data.names, seed)
         typer.echo(
             f"chose {sel.m} of {sel.report['n_distinct']} distinct rows "
@@ -170,3 +177,24 @@ def register(app: typer.Typer) -> None:
             f"{sel.n_features} features: MMD features {sel.mmd_features:.4g}, "
             f"exact {sel.mmd_exact:.4g} ({sel.mmd_exact_rows} rows) -> {out}"
         )
+
+
+def _thin_with_bar(thin: Callable[..., Any], data: Any, budget: int, seed: int, given: Any):
+    """``thin`` with a rich progress bar per step."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    with Progress(
+        TextColumn("{task.description}"),
+        BarColumn(),
+        TextColumn("{task.completed}/{task.total}"),
+        TimeElapsedColumn(),
+        transient=True,
+    ) as bar:
+        tasks: dict[str, int] = {}
+
+        def progress(done: int, total: int, what: str) -> None:
+            if what not in tasks:
+                tasks[what] = bar.add_task(what, total=total)
+            bar.update(tasks[what], completed=done, total=total)
+
+        return thin(data, budget, rng=seed, progress=progress, settings=given)

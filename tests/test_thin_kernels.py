@@ -12,7 +12,12 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from winnow.tasks.thin._features import draw_feature_map, draw_unit_frequencies, features_of_rows
+from winnow.tasks.thin._features import (
+    FEATURE_MAPS,
+    draw_feature_map,
+    draw_unit_frequencies,
+    features_of_rows,
+)
 from winnow.tasks.thin._kernels import KERNELS, get_kernel, median_heuristic
 
 KERNEL_NAMES = sorted(KERNELS)
@@ -48,7 +53,7 @@ def test_gram_matches_closed_form(name):
 
 
 @pytest.mark.parametrize("name", KERNEL_NAMES)
-@pytest.mark.parametrize("kind", ["rff", "orf", "qmc"])
+@pytest.mark.parametrize("kind", list(FEATURE_MAPS))
 def test_random_features_approximate_the_kernel(name, kind):
     # Rahimi & Recht 2007, Eq. 2: phi(x).phi(y) -> k(x - y). With D = 8192 frequencies each
     # estimate is a mean of D bounded terms cos(.) in [-1, 1], so its sd is <= 1/sqrt(2 D) =
@@ -75,7 +80,7 @@ def test_random_features_approximate_the_kernel(name, kind):
         ("matern52", stats.t(df=5)),
     ],
 )
-@pytest.mark.parametrize("kind", ["rff", "orf", "qmc"])
+@pytest.mark.parametrize("kind", list(FEATURE_MAPS))
 def test_spectral_marginals(name, marginal, kind):
     # Each coordinate of w (bandwidth 1) follows the stated 1-D marginal; Kolmogorov-Smirnov
     # (scipy.stats.kstest) at 4000 draws, p > 1e-3 with a fixed seed.

@@ -13,7 +13,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from winnow.tasks.records import Chain, Selection
-from winnow.tasks.thin import SELECTORS, disjoint, extend, replace, thin
+from winnow.tasks.thin import KERNELS, SELECTORS, disjoint, extend, replace, thin
 from winnow.tasks.thin._greedy import GreedyState, corrective_scores
 from winnow.tasks.thin._selector import Problem
 
@@ -248,7 +248,7 @@ def test_extend_replace_disjoint(chain):
     m_frac=st.floats(0.05, 1.0),
     method=st.sampled_from(sorted(SELECTORS)),
     rule=st.sampled_from(["simplex", "uniform"]),
-    kernel=st.sampled_from(["gaussian", "laplace", "matern32", "matern52"]),
+    kernel=st.sampled_from(list(KERNELS)),
     seed=st.integers(0, 2**16),
 )
 def test_invariants_on_random_chains(n, d, reps, m_frac, method, rule, kernel, seed):

@@ -232,7 +232,8 @@ def mmd_exact(
         Target rows, each with weight ``1 / n``.
     points : array_like, shape (m, d)
     weights : array_like, shape (m,)
-    kernel : {"gaussian", "laplace", "matern32", "matern52"}
+    kernel : str or Kernel
+        A name in ``KERNELS``.
     bandwidth : float
         Kernel bandwidth in the coordinates of ``samples``.
     max_rows : int
