@@ -191,29 +191,40 @@ def note_progress(
 
 
 def _on_signal(signum: int, frame: Any) -> None:
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        Interrupted,
+        kill_all_now,
+        kill_descendant_solvers,
+        request_stop,
+        stop_requested,
+        terminate_descendant_solvers,
+    )
 
-    if _process.stop_requested():  # the second signal: no more waiting
-        _process.kill_all_now()
-        _process.kill_descendant_solvers()
+    if stop_requested():  # the second signal: no more waiting
+        kill_all_now()
+        kill_descendant_solvers()
         _report(signum, second=True)
         _hard_exit(128 + signum)
-    _process.request_stop(signum)
-    _process.terminate_descendant_solvers()  # also those of local Dask workers
+    request_stop(signum)
+    terminate_descendant_solvers()  # also those of local Dask workers
     threading.Thread(
         target=_watchdog, args=(signum,), name="winnow-exit-watchdog", daemon=True
     ).start()
-    raise _process.Interrupted(signum)
+    raise Interrupted(signum)
 
 
 def _watchdog(signum: int) -> None:
     """Exit the process HARD_EXIT_AFTER seconds after the first signal, whatever still waits."""
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        kill_all_now,
+        kill_descendant_solvers,
+        wait_idle,
+    )
 
     time.sleep(HARD_EXIT_AFTER)
-    _process.kill_all_now()
-    _process.kill_descendant_solvers()
-    _process.wait_idle(1.0)
+    kill_all_now()
+    kill_descendant_solvers()
+    wait_idle(1.0)
     _report(signum)
     _hard_exit(128 + signum)
 
@@ -237,12 +248,15 @@ def _hard_exit(code: int) -> NoReturn:
 
 def _run_counts(specs: Sequence[Any], since: float) -> dict[str, int]:
     """How the dispatched runs stand, from their journals (the only record written so far)."""
-    from winnow.tasks.dispatch import _process as _process
-    from winnow.tasks.dispatch._decks import OUTCOME_NAME
+    from winnow.tasks.dispatch import (
+        INTERRUPTED,
+        OUTCOME_NAME,
+        read_outcome,
+    )
 
     counts = {"stopped": 0, "kept": 0, "unsuccessful": 0, "not started": 0}
     for spec in specs:
-        o = _process.read_outcome(spec.run_dir)
+        o = read_outcome(spec.run_dir)
         try:  # journalled by this command (not left by an earlier one)
             written = os.stat(os.path.join(spec.run_dir, OUTCOME_NAME)).st_mtime >= since
         except OSError:
@@ -250,7 +264,7 @@ def _run_counts(specs: Sequence[Any], since: float) -> dict[str, int]:
         fresh = o is not None and o.key == spec.key and written
         if o is not None and o.key == spec.key and o.state == "succeeded":
             counts["kept"] += 1
-        elif fresh and o.state == "not_run" and o.message.startswith(_process.INTERRUPTED):
+        elif fresh and o.state == "not_run" and o.message.startswith(INTERRUPTED):
             counts["stopped"] += 1
         elif fresh and o.state != "not_run":
             counts["unsuccessful"] += 1
@@ -265,14 +279,16 @@ def _plural(n: int, word: str) -> str:
 
 def _report(signum: int, *, second: bool = False) -> None:
     """Print once what the interrupt stopped and how to resume."""
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        signal_name,
+    )
 
     with _LOCK:
         if _STATE.get("reported") or not _STATE:
             return
         _STATE["reported"] = True
         state = dict(_STATE)
-    name = _process.signal_name(signum)
+    name = signal_name(signum)
     resume = f"run `{state['resume']}` again to resume" if state["resume"] else "run again"
     store = f" {state['store']}" if state["store"] else ""
     lines = []
@@ -303,12 +319,15 @@ def _report(signum: int, *, second: bool = False) -> None:
 
 def _signal_of(exc: BaseException) -> int | None:
     """The signal behind an exception that ends an interrupted command, or None."""
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        Interrupted,
+        stop_signal,
+    )
 
-    sig = _process.stop_signal()
+    sig = stop_signal()
     if sig is not None:
         return sig
-    if isinstance(exc, _process.Interrupted):
+    if isinstance(exc, Interrupted):
         return exc.signum
     if type(exc).__name__ == "TerminationSignal":  # Prefect's SIGTERM bridge
         return int(getattr(exc, "signal", signal.SIGTERM))
@@ -324,7 +343,9 @@ def interruptible(resume: str) -> Iterator[None]:
     ``resume`` is the command that resumes the study (printed in the report). The previous
     handlers are restored afterwards. Outside the main thread this does nothing.
     """
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        reset_stop,
+    )
 
     if threading.current_thread() is not threading.main_thread():
         yield
@@ -332,7 +353,7 @@ def interruptible(resume: str) -> Iterator[None]:
     with _LOCK:
         _STATE.clear()
         _STATE.update(_fresh_state(resume))
-    _process.reset_stop()
+    reset_stop()
     previous = {sig: signal.signal(sig, _on_signal) for sig in _SIGNALS}
 
     def restore() -> None:
@@ -340,7 +361,7 @@ def interruptible(resume: str) -> Iterator[None]:
             signal.signal(sig, handler)
         with _LOCK:
             _STATE.clear()
-        _process.reset_stop()
+        reset_stop()
 
     try:
         yield
@@ -356,11 +377,16 @@ def interruptible(resume: str) -> Iterator[None]:
 
 def _finish_interrupted(signum: int) -> NoReturn:
     """The orderly end of an interrupted command: solvers gone, report, exit 128 + signum."""
-    from winnow.tasks.dispatch import _process as _process
+    from winnow.tasks.dispatch import (
+        INTERRUPT_GRACE,
+        request_stop,
+        terminate_descendant_solvers,
+        wait_idle,
+    )
 
-    _process.request_stop(signum)  # also when the interrupt did not come through _on_signal
-    _process.terminate_descendant_solvers()
-    _process.wait_idle(_process.INTERRUPT_GRACE + 1.0)  # each stopped run has its journal
+    request_stop(signum)  # also when the interrupt did not come through _on_signal
+    terminate_descendant_solvers()
+    wait_idle(INTERRUPT_GRACE + 1.0)  # each stopped run has its journal
     _report(signum)
     if not any(t.name == "winnow-exit-watchdog" for t in threading.enumerate()):
         threading.Thread(

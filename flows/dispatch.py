@@ -36,13 +36,21 @@ from prefect.logging import get_run_logger
 
 from winnow.tasks.dispatch import (
     DEFAULT_TAIL_BYTES,
+    INTERRUPT_GRACE,
+    INTERRUPTED,
+    Interrupted,
     RunOptions,
     execute_run,
+    failed_outcome,
     plan_dispatch,
     read_outcome,
+    request_stop,
+    signal_name,
+    stop_requested,
+    stop_signal,
+    terminate_running,
+    wait_idle,
 )
-from winnow.tasks.dispatch import _process as _process
-from winnow.tasks.dispatch._process import Interrupted, failed_outcome
 from winnow.tasks.records import RunOutcome, RunSpec
 
 __all__ = ["dispatch_flow", "make_task_runner", "run_point"]
@@ -63,7 +71,7 @@ def make_task_runner(config_value: Any, *, concurrency: int):
     """
     from prefect.task_runners import ThreadPoolTaskRunner
 
-    from winnow.tasks.dispatch._runners import _validate_concurrency
+    from winnow.tasks.dispatch import validate_concurrency as _validate_concurrency
 
     concurrency = _validate_concurrency(concurrency)
     if config_value is None or config_value == "local" or config_value == {"local": {}}:
@@ -174,7 +182,7 @@ def dispatch_flow(
         check_output=check_output,
         kill_grace=kill_grace,
     )
-    from winnow.tasks.dispatch._runners import _validate_concurrency
+    from winnow.tasks.dispatch import validate_concurrency as _validate_concurrency
 
     concurrency = _validate_concurrency(concurrency)
     task_runner = make_task_runner(runner, concurrency=concurrency)
@@ -210,9 +218,9 @@ def dispatch_flow(
                 if isinstance(exc, Interrupted):
                     raise
                 raise Interrupted(signum) from exc
-    if _process.stop_requested():
+    if stop_requested():
         # stopped from elsewhere (another thread): the runs not started have no outcome
-        raise Interrupted(_process.stop_signal() or signal.SIGINT)
+        raise Interrupted(stop_signal() or signal.SIGINT)
     return [done[s.run_id] for s in specs]
 
 
@@ -225,7 +233,7 @@ def _interrupt_signal(exc: BaseException) -> int | None:
     if isinstance(exc, TerminationSignal):  # Prefect's SIGTERM handler was in force
         return int(exc.signal)
     if isinstance(exc, KeyboardInterrupt):
-        return int(_process.stop_signal() or signal.SIGINT)
+        return int(stop_signal() or signal.SIGINT)
     return None
 
 
@@ -246,10 +254,10 @@ def _stop_in_flight(
 ) -> None:
     """Stop the runs in flight: terminate their solvers and wait (a few seconds at most)
     until each has journalled how it ended."""
-    _process.request_stop(signum)  # solvers of this process (thread-pool task runner)
+    request_stop(signum)  # solvers of this process (thread-pool task runner)
     client = getattr(active, "_client", None)
     if client is None:
-        _process.wait_idle(_process.INTERRUPT_GRACE + 1.0)
+        wait_idle(INTERRUPT_GRACE + 1.0)
         return
     # A Dask task runner: the solvers run in the workers' processes. Cancelled first, so that
     # the scheduler does not start them again elsewhere when a worker dies of the same signal.
@@ -259,8 +267,8 @@ def _stop_in_flight(
             wrapped.cancel()
         except Exception:  # noqa: BLE001 - a closed client
             pass
-    _on_workers(client, _process.terminate_running, signum)
-    deadline = time.monotonic() + _process.INTERRUPT_GRACE + 1.0
+    _on_workers(client, terminate_running, signum)
+    deadline = time.monotonic() + INTERRUPT_GRACE + 1.0
     waiting = [spec for spec, _ in in_flight]
     while waiting and time.monotonic() < deadline:
         waiting = [spec for spec in waiting if not _journalled_since(spec, since)]
@@ -289,10 +297,10 @@ def _journal_interrupted(spec: RunSpec, signum: int, since: float) -> None:
 
     o = read_outcome(spec.run_dir)
     fresh = o is not None and o.key == spec.key and _journalled_since(spec, since)
-    if fresh and (o.state == "succeeded" or o.message.startswith(_process.INTERRUPTED)):
+    if fresh and (o.state == "succeeded" or o.message.startswith(INTERRUPTED)):
         return
     message = (
-        f"{_process.INTERRUPTED} by {_process.signal_name(signum)}: the solver's process group "
+        f"{INTERRUPTED} by {signal_name(signum)}: the solver's process group "
         "was terminated; the run starts again when the study resumes"
     )
     if fresh:
@@ -331,7 +339,7 @@ def _bounded(
 ) -> Iterator[tuple[RunSpec, Any]]:
     """Submit the runs of ``todo`` with at most ``limit`` in flight; yield ``(spec, future)``
     as each finishes, submitting the next one first. No run is submitted once a stop was
-    requested (:func:`winnow.tasks.dispatch._process.request_stop`).
+    requested (:func:`winnow.tasks.dispatch.request_stop`).
 
     The limit is kept here rather than left to the task runner: a Dask cluster would run one
     task per worker slot, whatever the study's ``concurrency`` says. ``in_flight`` (filled
@@ -346,7 +354,7 @@ def _bounded(
         in_flight[id(future)] = (spec, future)
         future.add_done_callback(lambda f, key=id(future): finished.put(key))
 
-    while waiting and len(in_flight) < limit and not _process.stop_requested():
+    while waiting and len(in_flight) < limit and not stop_requested():
         submit()
     while in_flight:
         try:
@@ -355,6 +363,6 @@ def _bounded(
         except queue.Empty:
             continue
         spec, future = in_flight.pop(key)
-        if waiting and not _process.stop_requested():
+        if waiting and not stop_requested():
             submit()
         yield spec, future

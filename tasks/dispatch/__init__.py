@@ -33,6 +33,23 @@ from ._dispatch import (
     select_for_rerun,
     write_outcome,
 )
+from ._process import (
+    INTERRUPT_GRACE,
+    INTERRUPTED,
+    Interrupted,
+    failed_outcome,
+    kill_all_now,
+    kill_descendant_solvers,
+    request_stop,
+    reset_stop,
+    signal_name,
+    stop_requested,
+    stop_signal,
+    terminate_descendant_solvers,
+    terminate_running,
+    wait_idle,
+)
+from ._runners import validate_concurrency
 from ._stage import (
     deck_spec,
     prepare_runs,
@@ -41,6 +58,21 @@ from ._stage import (
 )
 
 __all__ = [
+    "INTERRUPTED",
+    "INTERRUPT_GRACE",
+    "Interrupted",
+    "kill_all_now",
+    "kill_descendant_solvers",
+    "request_stop",
+    "reset_stop",
+    "signal_name",
+    "stop_requested",
+    "stop_signal",
+    "terminate_descendant_solvers",
+    "terminate_running",
+    "wait_idle",
+    "failed_outcome",
+    "validate_concurrency",
     "BatchRunner",
     "DEFAULT_TAIL_BYTES",
     "DaskRunner",

@@ -674,3 +674,7 @@ def make_runner(config_value: Any, *, concurrency: int) -> Runner:
             raise ValueError(f"runner {kind!r} is unknown; valid: {sorted(_RUNNERS)}")
         return _RUNNERS[kind](value, concurrency)
     raise TypeError(f"runner must be a string or a dict, got {type(config_value).__name__}")
+
+
+#: Public name of the concurrency check, for the flows that take the same argument.
+validate_concurrency = _validate_concurrency
