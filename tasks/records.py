@@ -140,13 +140,14 @@ class Selection:
     points : ndarray, shape (m, d)
         The chosen rows in the user's units (``chain.samples[indices]``).
     method : str
-        Selector name (``greedy``, ``swap``, ``genetic``, ``random``, ``stride``).
+        Selector name (a key of ``winnow.tasks.thin.SELECTORS``).
     weights_rule : str
         ``simplex`` (optimal MMD weights) or ``uniform``.
     kernel : str
         Kernel name; ``bandwidth`` is in standardised coordinates.
     feature_map : str
-        ``rff``, ``orf`` or ``qmc``; ``n_features`` is the number of features used.
+        A key of ``winnow.tasks.thin.FEATURE_MAPS``; ``n_features`` is the number of
+        features used.
     seed : int or None
         Seed the selection was made with (None when a Generator was passed).
     mmd_features : float
