@@ -4,13 +4,14 @@ Every core module here is importable without Prefect:
 
 * :mod:`winnow.tasks.config` -- the study config models and loader;
 * :mod:`winnow.tasks.records` -- the plain data objects the stages pass on;
-* :mod:`winnow.tasks.sample`, :mod:`~winnow.tasks.sample`,
-  :mod:`~winnow.tasks.sample` -- the sample stage;
+* :mod:`winnow.tasks.sample` -- the sample stage (sampler, diagnostics, chain files);
 * :mod:`winnow.tasks.thin` -- the thin stage;
 * :mod:`winnow.tasks.dispatch` -- the dispatch stage;
 * :mod:`winnow.tasks.collect` -- the collect stage and report;
 * :mod:`winnow.tasks.store` -- the HDF5 run store;
-* :mod:`winnow.tasks.stages` -- the stages driven by a study config.
+* :mod:`winnow.tasks.preflight` -- the checks of a study config run before anything is written.
+
+Each stage package's ``_stage.py`` drives that stage from a validated study config.
 
 The Prefect task wrappers live in :mod:`winnow.tasks.prefect_tasks`; reading one of their
 names from this package imports that module (and Prefect) on first use, so

@@ -1,4 +1,4 @@
-"""The convergence gate of the sample stage (``sample.checks``, tasks/stages.py).
+"""The convergence gate of the sample stage (``sample.checks``, tasks/sample/_stage.py).
 
 A chain that fails a threshold stops the study before thinning (``on_failure: stop``, the
 default) with a :class:`~winnow.tasks.sample.ConvergenceError` naming the parameter, the
