@@ -10,6 +10,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from typing import Any
 
+from winnow.tasks.dispatch import point_of_run
 from winnow.tasks.errors import InputError
 
 __all__ = ["StudyFailed", "StudyRefused", "check_study_end", "unread_values"]
@@ -98,6 +99,13 @@ def check_study_end(result: Any, study: str, store_path: Any, *, again: str) -> 
 # --------------------------------------------------------------------------------------------
 # continuing after a fix (issue 17 item 1): what is run again, and why
 # --------------------------------------------------------------------------------------------
+def _canonical_argv(spec: Any) -> list[str]:
+    # each run's own folder written as {run_dir}, as the run key does: a new folder for a
+    # new solver setup is not a changed command
+    root = str(spec.run_dir)
+    return [a.replace(root, "{run_dir}") for a in spec.argv]
+
+
 def _changed_decks(old: Any, new: Any) -> str:
     """Why a point's run key changed: the deck files (or staged inputs) and the command."""
     files = sorted(
@@ -106,7 +114,7 @@ def _changed_decks(old: Any, new: Any) -> str:
         if old.deck_hashes.get(f) != new.deck_hashes.get(f)
     )
     parts = [f"{', '.join(files)} changed"] if files else []
-    if list(old.argv) != list(new.argv):
+    if _canonical_argv(old) != _canonical_argv(new):
         parts.append("the command changed")
     return "; ".join(parts) or "its run key changed"
 
@@ -124,8 +132,9 @@ def run_reasons(
         The runs of the revision.
     outcomes : mapping of run id to RunOutcome
         Their outcomes after dispatch.
-    earlier : mapping of run id to (revision, RunSpec, RunOutcome or None)
-        The newest earlier record of each run id (the same point and parameter values).
+    earlier : mapping of point id to (revision, RunSpec, RunOutcome or None)
+        The newest earlier record of each point (the same index and parameter values,
+        whatever the solver setup; see :func:`earlier_runs`).
 
     Returns
     -------
@@ -139,7 +148,7 @@ def run_reasons(
         o = outcomes.get(s.run_id)
         if o is None or o.reused_from or not o.attempts:
             continue  # not run by this flow run
-        prev = earlier.get(s.run_id)
+        prev = earlier.get(point_of_run(s.run_id))
         if prev is None:
             out[s.run_id] = "new point"
             continue
@@ -171,8 +180,13 @@ def reasons_text(ran: Mapping[str, str], limit: int = 6) -> str:
 
 
 def earlier_runs(store: Any, rev: str) -> dict[str, tuple[str, Any, Any]]:
-    """The newest record of each run id in the store's revisions other than ``rev``:
-    ``{run id: (revision, RunSpec, RunOutcome or None)}``."""
+    """The newest record of each point in the store's revisions other than ``rev``:
+    ``{point id: (revision, RunSpec, RunOutcome or None)}``.
+
+    Keyed by the point's part of the run id: a changed solver setup gives the point a new run
+    folder (:func:`~winnow.tasks.dispatch.run_id_for`), and the reason it ran again is found
+    by comparing with the point's run under the old setup.
+    """
     out: dict[str, tuple[str, Any, Any]] = {}
     for r in store.revisions():
         if r == rev or "runs" not in store.stages_done(r):
@@ -180,5 +194,5 @@ def earlier_runs(store: Any, rev: str) -> dict[str, tuple[str, Any, Any]]:
         specs, outcomes = store.read_runs(r)
         by_id = {o.run_id: o for o in outcomes}
         for s in specs:
-            out[s.run_id] = (r, s, by_id.get(s.run_id))
+            out[point_of_run(s.run_id)] = (r, s, by_id.get(s.run_id))
     return out

@@ -19,10 +19,13 @@ from winnow.tasks.dispatch import (
     DeckError,
     DeckSpec,
     format_number,
+    point_of_run,
     point_run_id,
     read_manifest,
     render_run,
+    run_id_for,
     run_key,
+    setup_digest,
     write_outcome,
 )
 from winnow.tasks.records import RunOutcome
@@ -235,6 +238,9 @@ def test_single_string_command_is_refused_with_argv_hint(tpl, tmp_path):
 # --------------------------------------------------------------------------------------------
 # run folder, manifest, key
 # --------------------------------------------------------------------------------------------
+COMMAND_FOR_MANIFEST = ["solver", "{deck}", "--cfg", "{deck:sub/extra.cfg}", "--out", "{run_dir}/o"]
+
+
 def test_run_folder_contents_and_manifest(tpl, tmp_path):
     (tpl / "sub").mkdir()
     (tpl / "sub" / "extra.cfg.j2").write_text("n = {{ n_cells }} idx = {{ point_index }}")
@@ -250,10 +256,13 @@ def test_run_folder_contents_and_manifest(tpl, tmp_path):
         tpl,
         tmp_path / "runs",
         decks=decks,
-        command=["solver", "{deck}", "--cfg", "{deck:sub/extra.cfg}", "--out", "{run_dir}/o"],
+        command=COMMAND_FOR_MANIFEST,
         provenance={"selection": "sel-7"},
     )
-    assert spec.run_id == point_run_id(3, {"k": 1.5e-4})
+    setup = setup_digest(decks, COMMAND_FOR_MANIFEST, tpl)
+    assert spec.run_id == run_id_for(3, {"k": 1.5e-4}, setup)
+    assert spec.run_id == f"{point_run_id(3, {'k': 1.5e-4})}-s{setup[:6]}"
+    assert point_of_run(spec.run_id) == point_run_id(3, {"k": 1.5e-4})
     assert spec.run_dir == (tmp_path / "runs" / spec.run_id).absolute()
     main = (spec.run_dir / "main.in").read_text()
     assert main == f"k = 0.00015\nid = {spec.run_id}\nw = 0.25\n"
@@ -290,6 +299,40 @@ def test_key_ignores_study_location_but_follows_decks_and_command(tpl, tmp_path)
     c = _render(tpl, tmp_path / "c", command=["solver", "-v", "{deck}", "{run_dir}"])
     d = _render(tpl, tmp_path / "d", params={"k": 1.5000000000000001e-4 * 2})
     assert len({a.key, c.key, d.key}) == 3
+
+
+def test_run_folders_follow_the_solver_setup_and_keep_finished_runs(tpl, tmp_path):
+    # issue 18 item 5: a changed template, constant, format, staged input or command gives
+    # the point a new run folder; the finished run of the old setup stays where it was
+    runs = tmp_path / "runs"
+    (tpl / "table.csv").write_text("a\n1\n")
+    base = DeckSpec(["main.in.j2"], copies=["table.csv"], constants={"c": 1})
+    first = _render(tpl, runs, decks=base)
+    _journal(first, "succeeded")
+    again = _render(tpl, runs, decks=base)
+    assert again.run_id == first.run_id and again.key == first.key  # same setup, same folder
+    ids = {first.run_id}
+    variants = [
+        dict(decks=DeckSpec(["main.in.j2"], copies=["table.csv"], constants={"c": 2})),
+        dict(
+            decks=DeckSpec(
+                ["main.in.j2"], copies=["table.csv"], constants={"c": 1}, formats={"k": ".3e"}
+            )
+        ),
+        dict(decks=base, command=["solver", "-v", "{deck}"]),
+    ]
+    for kw in variants:
+        spec = _render(tpl, runs, **kw)
+        assert point_of_run(spec.run_id) == point_of_run(first.run_id)
+        ids.add(spec.run_id)
+    (tpl / "table.csv").write_text("a\n2\n")  # staged input edited
+    ids.add(_render(tpl, runs, decks=base).run_id)
+    (tpl / "main.in.j2").write_text("k = {{ k }}\n")  # template edited
+    ids.add(_render(tpl, runs, decks=base).run_id)
+    assert len(ids) == 6
+    # the finished run of the first setup is untouched
+    assert read_manifest(first.run_dir)["key"] == first.key
+    assert (first.run_dir / "table.csv").read_text() == "a\n1\n"
 
 
 def test_point_run_id_is_stable_and_distinct():
@@ -329,6 +372,10 @@ def test_rerender_keeps_finished_run_and_cleans_the_rest(tpl, tmp_path):
 def test_finished_run_under_another_key_is_never_overwritten(tpl, tmp_path):
     spec = _render(tpl, tmp_path / "runs")
     _journal(spec, "succeeded")
+    # a caller naming the folder itself gets a refusal, never an overwrite
     with pytest.raises(ValueError, match="another key"):
-        _render(tpl, tmp_path / "runs", command=["other-solver", "{deck}"])
+        _render(tpl, tmp_path / "runs", command=["other-solver", "{deck}"], run_id=spec.run_id)
     assert os.path.exists(spec.run_dir / "winnow-outcome.json")
+    # the default id follows the setup: the other command gets its own folder
+    other = _render(tpl, tmp_path / "runs", command=["other-solver", "{deck}"])
+    assert other.run_dir != spec.run_dir and os.path.exists(spec.run_dir / "winnow-outcome.json")

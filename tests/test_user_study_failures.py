@@ -277,11 +277,6 @@ def test_rerun_after_a_template_change_is_refused_before_anything_is_written(
     assert (store.read_bytes(), sorted(p.stat().st_mtime_ns for p in folder.rglob("*"))) == before
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="needs run folders that follow the run key (issue 18 item 5): the point's folder "
-    "still holds the r0001 run under the old key",
-)
 def test_run_after_a_template_change_keeps_unchanged_runs_and_says_why_it_runs_the_others(
     prefect_harness, tmp_path, wide_terminal
 ):

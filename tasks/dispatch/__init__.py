@@ -4,6 +4,7 @@ and record every outcome.
 
 from __future__ import annotations
 
+from ._decks import setup_digest
 from ._dispatch import (
     DEFAULT_TAIL_BYTES,
     MANIFEST_NAME,
@@ -49,6 +50,7 @@ from ._process import (
     terminate_running,
     wait_idle,
 )
+from ._runids import point_of_run, run_id_for
 from ._runners import validate_concurrency
 from ._stage import (
     deck_spec,
@@ -92,16 +94,19 @@ __all__ = [
     "outcome_from_dict",
     "outcome_to_dict",
     "plan_dispatch",
+    "point_of_run",
     "point_run_id",
     "prepare_runs",
     "read_manifest",
     "read_outcome",
     "render_run",
     "render_selection",
+    "run_id_for",
     "run_key",
     "run_one",
     "scan_run_folders",
     "select_for_rerun",
+    "setup_digest",
     "solver_command",
     "write_outcome",
 ]

@@ -36,6 +36,15 @@ from typing import Any
 
 from winnow.tasks.records import RunSpec
 
+from ._runids import (
+    _sha256_file,
+    _validate_params,
+    point_run_id,
+    run_id_for,
+    run_key,
+    setup_digest_of,
+)
+
 __all__ = [
     "MANIFEST_NAME",
     "OUTCOME_NAME",
@@ -44,7 +53,9 @@ __all__ = [
     "format_number",
     "point_run_id",
     "render_run",
+    "run_id_for",
     "run_key",
+    "setup_digest",
 ]
 
 MANIFEST_NAME = "winnow-manifest.json"
@@ -70,26 +81,6 @@ class DeckError(ValueError):
 # --------------------------------------------------------------------------------------------
 # validation helpers
 # --------------------------------------------------------------------------------------------
-def _validate_params(params: Any) -> dict[str, float]:
-    if not isinstance(params, Mapping):
-        raise TypeError(f"params must be a mapping of name to number, got {type(params).__name__}")
-    out: dict[str, float] = {}
-    for name, value in params.items():
-        if not isinstance(name, str) or not name.isidentifier():
-            raise ValueError(f"parameter names must be identifiers, got {name!r}")
-        if isinstance(value, bool) or not isinstance(value, numbers.Real):
-            raise TypeError(
-                f"parameter {name!r} must be a real number, got {type(value).__name__} {value!r}"
-            )
-        value = float(value)
-        if not math.isfinite(value):
-            raise ValueError(f"parameter {name!r} must be a finite number, got {value!r}")
-        out[name] = value
-    if not out:
-        raise ValueError("params must hold at least one parameter, got an empty mapping")
-    return out
-
-
 def _validate_relative(path: str, *, what: str, fix: str = "") -> PurePosixPath:
     """Return ``path`` as a clean relative path, refusing absolute paths and ``..``.
 
@@ -197,47 +188,6 @@ class _DeckNumber(float):
 
     def __repr__(self) -> str:
         return self.text
-
-
-def _params_digest(params: Mapping[str, float]) -> str:
-    canon = json.dumps({k: repr(float(v)) for k, v in sorted(params.items())}, sort_keys=True)
-    return hashlib.sha256(canon.encode()).hexdigest()
-
-
-def point_run_id(point_index: int, params: Mapping[str, float]) -> str:
-    """Stable id of a point: ``"p<index, 6 digits>-<8 hex of the parameter hash>"``.
-
-    The same point index and parameter values (exact floats) always give the same id, so a
-    rerun finds its own run folder again.
-    """
-    if isinstance(point_index, bool) or not isinstance(point_index, numbers.Integral):
-        raise TypeError(f"point_index must be an int, got {point_index!r}")
-    if point_index < 0:
-        raise ValueError(f"point_index must be >= 0, got {point_index}")
-    clean = _validate_params(params)
-    return f"p{int(point_index):06d}-{_params_digest(clean)[:8]}"
-
-
-def run_key(deck_hashes: Mapping[str, str], argv: Sequence[str], run_dir: Path | str) -> str:
-    """SHA-256 over the deck hashes and the command.
-
-    The run folder in ``argv`` is written as ``{run_dir}`` before hashing, so the key of a
-    point does not depend on where the study folder lives.
-    """
-    root = str(run_dir)
-    canon_argv = [a.replace(root, "{run_dir}") for a in argv]
-    payload = json.dumps(
-        {"decks": dict(sorted(deck_hashes.items())), "argv": canon_argv}, sort_keys=True
-    )
-    return hashlib.sha256(payload.encode()).hexdigest()
-
-
-def _sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 # --------------------------------------------------------------------------------------------
@@ -412,6 +362,51 @@ def _source_and_dest(entry: str, template_root: Path, what: str) -> tuple[Path, 
     return source, dest
 
 
+def setup_digest(decks: DeckSpec, command: Sequence[str], template_root: Path | str) -> str:
+    """Digest (hex) of everything but the point that goes into a run key.
+
+    The template sources and staged copies by content, the links by target, the constants,
+    the formats and the solver command. Run ids end in its first 6 digits
+    (:func:`run_id_for`), so a changed template or solver setting gives new run folders
+    (a study changed that way can always be run again) while the run key still decides
+    which finished runs are reused.
+
+    Parameters
+    ----------
+    decks : DeckSpec
+    command : sequence of str
+        The solver argv as given to :func:`render_run`.
+    template_root : path
+        Folder the templates and relative copies/links are found in.
+    """
+    if not isinstance(decks, DeckSpec):
+        raise TypeError(f"decks must be a DeckSpec, got {type(decks).__name__}")
+    root = Path(template_root)
+    templates = {}
+    for entry in decks.templates:
+        name = _template_name(entry, root)
+        source = root / name
+        templates[name] = _sha256_file(source) if source.is_file() else None
+    copies = {
+        str(d): _sha256_file(s)
+        for s, d in (_source_and_dest(e, root, "copy") for e in decks.copies)
+    }
+    links = {
+        str(d): str(s.resolve())
+        for s, d in (_source_and_dest(e, root, "link") for e in decks.links)
+    }
+    return setup_digest_of(
+        {
+            "templates": templates,
+            "copies": copies,
+            "links": links,
+            "constants": dict(decks.constants),
+            "formats": dict(decks.formats),
+            "command": list(_validate_command(command)),
+        }
+    )
+
+
 def _fill_argv(
     argv: tuple[str, ...],
     run_dir: Path,
@@ -513,7 +508,8 @@ def render_run(
     params : dict of str to float
         Finite parameter values in the user's units.
     run_id : str, optional
-        Folder name; default :func:`point_run_id` of ``point_index`` and ``params``.
+        Folder name; default :func:`run_id_for` the point and the solver setup
+        (:func:`setup_digest`), so a changed template or command gets a new folder.
     point_index : int
         Row index of the point in the chain.
     weight : float
@@ -547,9 +543,10 @@ def render_run(
     if not isinstance(decks, DeckSpec):
         raise TypeError(f"decks must be a DeckSpec, got {type(decks).__name__}")
     argv_template = _validate_command(command)
-    rid = point_run_id(point_index, clean) if run_id is None else run_id
-    if not isinstance(rid, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9._-]*", rid):
-        raise ValueError(f"run_id must be letters, digits, '.', '_' or '-', got {rid!r}")
+    if run_id is not None and (
+        not isinstance(run_id, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9._-]*", run_id)
+    ):
+        raise ValueError(f"run_id must be letters, digits, '.', '_' or '-', got {run_id!r}")
     unknown = sorted(set(decks.formats) - set(clean))
     if unknown:
         raise ValueError(
@@ -564,6 +561,10 @@ def render_run(
     template_root = Path(template_root)
     if not template_root.is_dir():
         raise FileNotFoundError(f"template_root {template_root} is not a folder")
+    if run_id is None:
+        rid = run_id_for(point_index, clean, setup_digest(decks, command, template_root))
+    else:
+        rid = run_id
     run_root = Path(run_root).absolute()
     run_dir = run_root / rid
 

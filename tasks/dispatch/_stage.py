@@ -40,9 +40,12 @@ def render_selection(
     ``names`` are the parameter names of the selection's columns, ``decks`` a
     :class:`~winnow.tasks.dispatch.DeckSpec`; ``command`` may use ``{python}``.
     """
-    from ._dispatch import point_run_id, render_run
+    from ._decks import render_run, setup_digest
+    from ._runids import run_id_for
 
     argv = solver_command(command)
+    # one digest for the whole selection: each run id ends in it (issue 18 item 5)
+    setup = setup_digest(decks, argv, template_root)
     Path(run_root).mkdir(parents=True, exist_ok=True)
     specs = []
     for k in range(selection.m) if positions is None else positions:
@@ -51,7 +54,7 @@ def render_selection(
         specs.append(
             render_run(
                 params,
-                run_id=point_run_id(idx, params),
+                run_id=run_id_for(idx, params, setup),
                 point_index=idx,
                 weight=float(selection.weights[k]),
                 run_root=run_root,
