@@ -36,6 +36,7 @@ from ._dispatch import (
     InputFile,
     LocalClusterSettings,
 )
+from ._levels import LevelPairing, LevelSettings, LevelsSettings
 from ._load import (
     config_hash,
     config_schema,
@@ -87,6 +88,9 @@ __all__ = [
     "InputFile",
     "JsonReader",
     "KernelName",
+    "LevelPairing",
+    "LevelSettings",
+    "LevelsSettings",
     "LocalClusterSettings",
     "MethodName",
     "ModelSettings",

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pydantic import (
     Field,
+    ValidationInfo,
     field_validator,
     model_validator,
 )
@@ -12,6 +13,7 @@ from pydantic import (
 from ._base import _Model
 from ._collect import CollectSettings
 from ._dispatch import DispatchSettings
+from ._levels import LevelsSettings
 from ._sample import Parameter, SampleSettings
 from ._thin import ThinSettings
 
@@ -61,6 +63,11 @@ class StudyConfig(_Model):
     thin: ThinSettings = Field(default_factory=ThinSettings, description="Thin stage settings.")
     dispatch: DispatchSettings = Field(description="Dispatch stage settings.")
     collect: CollectSettings = Field(description="Collect stage settings.")
+    levels: LevelsSettings | None = Field(
+        None,
+        description="Multilevel study: the solver fidelities, coarse to fine, with their "
+        "costs, budgets, dispatch overrides and pairing (omit for one costly solver).",
+    )
 
     @model_validator(mode="after")
     def _names(self) -> StudyConfig:
@@ -71,6 +78,22 @@ class StudyConfig(_Model):
         clash = sorted(set(names) & set(self.dispatch.constants))
         if clash:
             raise ValueError(f"dispatch.constants repeat parameter names: {clash}")
+        return self
+
+    @model_validator(mode="after")
+    def _levels_dispatch(self, info: ValidationInfo) -> StudyConfig:
+        # each level's dispatch settings are checked now, not when its first run starts
+        if self.levels is None:
+            return self
+        self.levels.check_dispatch(self.dispatch, info)
+        names = set(self.names)
+        for f in self.levels.fidelities:
+            clash = sorted(names & set(f.dispatch.get("constants") or {}))
+            if clash:
+                raise ValueError(
+                    f"levels.fidelities[{f.name}].dispatch.constants repeat parameter "
+                    f"names: {clash}"
+                )
         return self
 
     @property
