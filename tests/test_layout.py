@@ -30,7 +30,6 @@ MAX_FUNCTION_LINES = 100
 #: will reshape exactly these modules. ``test_pending_breaches_are_still_breaches`` fails
 #: once an entry is fixed, so the list cannot go stale.
 PENDING = {
-    "tasks/dispatch/_decks.py": "issue 15, dispatch engine redesign (render_run)",
     "tasks/dispatch/_process.py": "issue 15, dispatch engine redesign (one retry loop)",
     "tasks/dispatch/_runners.py": "issue 15, dispatch engine redesign (one engine)",
     "flows/study.py": "issue 15, run/rerun orchestration module (study_flow)",

@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import functools
 import hashlib
-import json
 import math
 import numbers
 import os
@@ -36,6 +35,15 @@ from typing import Any
 
 from winnow.tasks.records import RunSpec
 
+from ._folders import (
+    MANIFEST_NAME,
+    OUTCOME_NAME,
+    DeckError,
+    _confined,
+    _read_outcome_state,
+    _validate_relative,
+    write_json_atomic,
+)
 from ._runids import (
     _sha256_file,
     _validate_params,
@@ -58,12 +66,6 @@ __all__ = [
     "setup_digest",
 ]
 
-MANIFEST_NAME = "winnow-manifest.json"
-OUTCOME_NAME = "winnow-outcome.json"
-STDOUT_NAME = "winnow-stdout.txt"
-STDERR_NAME = "winnow-stderr.txt"
-#: File names the dispatch stage writes into a run folder; a deck may not use them.
-RESERVED_NAMES = frozenset({MANIFEST_NAME, OUTCOME_NAME, STDOUT_NAME, STDERR_NAME})
 #: Template variables set by winnow; parameters and constants may not use these names.
 RESERVED_VARIABLES = frozenset(
     {"run_id", "point_id", "point_index", "chain_index", "weight", "run_dir", "params"}
@@ -74,48 +76,9 @@ MANIFEST_VERSION = 1
 _PLACEHOLDER = re.compile(r"\{(deck|run_dir|run_id|config_dir)(?::([^{}]+))?\}")
 
 
-class DeckError(ValueError):
-    """A deck could not be rendered: the message names the template and what went wrong."""
-
-
 # --------------------------------------------------------------------------------------------
 # validation helpers
 # --------------------------------------------------------------------------------------------
-def _validate_relative(path: str, *, what: str, fix: str = "") -> PurePosixPath:
-    """Return ``path`` as a clean relative path, refusing absolute paths and ``..``.
-
-    ``fix`` is appended to the message of a refused ``..`` (what to write instead).
-    """
-    text = os.fspath(path)
-    pure = PurePosixPath(text.replace("\\", "/"))
-    if pure.is_absolute() or re.match(r"^[A-Za-z]:", text):
-        raise DeckError(f"{what}: path {text!r} is absolute; it must stay inside the run folder")
-    if any(part == ".." for part in pure.parts):
-        raise DeckError(
-            f"{what}: path {text!r} contains '..'; it must stay inside the run folder{fix}"
-        )
-    parts = [p for p in pure.parts if p not in ("", ".")]
-    if not parts:
-        raise DeckError(f"{what}: path {text!r} names no file")
-    clean = PurePosixPath(*parts)
-    if len(parts) == 1 and clean.name in RESERVED_NAMES:
-        raise DeckError(f"{what}: path {text!r} is reserved for winnow's own files")
-    return clean
-
-
-def _confined(run_dir: Path, rel: PurePosixPath, *, what: str) -> Path:
-    """Join ``rel`` to ``run_dir`` and check that no link on the way leads out of it."""
-    root = run_dir.resolve()
-    target = root.joinpath(*rel.parts)
-    # Resolve the parent: a symlinked folder inside the run folder must not carry the file out.
-    parent = target.parent.resolve()
-    if parent != root and root not in parent.parents:
-        raise DeckError(f"{what}: path {str(rel)!r} leads out of the run folder {root}")
-    if target.is_symlink():
-        raise DeckError(f"{what}: path {str(rel)!r} is already a link in the run folder")
-    return target
-
-
 def _validate_command(command: Any) -> tuple[str, ...]:
     if isinstance(command, str | bytes):
         text = command.decode() if isinstance(command, bytes) else command
@@ -442,42 +405,86 @@ def _fill_argv(
     return tuple(_PLACEHOLDER.sub(sub, a) for a in argv)
 
 
-def read_manifest(run_dir: Path) -> dict[str, Any] | None:
-    """The manifest of a run folder, or None when absent or unreadable."""
+def _render_files(
+    decks: DeckSpec, context: dict[str, Any], template_root: Path
+) -> tuple[
+    dict[PurePosixPath, bytes], list[tuple[Path, PurePosixPath]], list[tuple[Path, PurePosixPath]]
+]:
+    """Render every template in memory and check the copies and links; nothing is written.
+
+    Returns the rendered decks by relative path, and the (source, destination) pairs of the
+    copies and of the links.
+    """
+    env = _environment(template_root.resolve())
+    rendered: dict[PurePosixPath, bytes] = {}
+    for entry in decks.templates:
+        name = _template_name(entry, template_root)
+        out_name = name[:-3] if name.endswith(".j2") else name
+        dest = _validate_relative(out_name, what=f"template {entry!r}")
+        if dest in rendered:
+            raise DeckError(f"template {entry!r}: two templates render to the same path {dest}")
+        rendered[dest] = _render_one(env, name, context, template_root).encode("utf-8")
+    copies = [_source_and_dest(e, template_root, "copy") for e in decks.copies]
+    links = [_source_and_dest(e, template_root, "link") for e in decks.links]
+    seen = set(rendered)
+    for _, dest in copies + links:
+        if dest in seen:
+            raise DeckError(f"path {str(dest)!r} is produced twice (templates, copies, links)")
+        seen.add(dest)
+    for _, dest in links:
+        # Nothing may be written below a linked folder: it would land outside the run folder.
+        inside = sorted(str(p) for p in seen if dest in p.parents)
+        if inside:
+            raise DeckError(
+                f"link {str(dest)!r}: paths {inside} would be written through this link, "
+                "out of the run folder"
+            )
+
+    return rendered, copies, links
+
+
+def _assemble(
+    run_root: Path,
+    rid: str,
+    rendered: Mapping[PurePosixPath, bytes],
+    copies: Sequence[tuple[Path, PurePosixPath]],
+    links: Sequence[tuple[Path, PurePosixPath]],
+    manifest: dict[str, Any],
+) -> None:
+    """Write the run folder under a temporary name, then move it into place.
+
+    A render killed half-way leaves only a ``.<id>.partial-*`` folder, removed by the next
+    render of that id; the run folder itself is either complete or absent.
+    """
+    run_dir = run_root / rid
+    run_root.mkdir(parents=True, exist_ok=True)
+    for stale in run_root.glob(f".{rid}.partial-*"):
+        # Left by a render that was killed before its folder was moved into place.
+        shutil.rmtree(stale, ignore_errors=True)
+    tmp_dir = Path(tempfile.mkdtemp(prefix=f".{rid}.partial-", dir=run_root))
     try:
-        with open(Path(run_dir) / MANIFEST_NAME, encoding="utf-8") as fh:
-            data = json.load(fh)
-    except (OSError, ValueError):
-        return None
-    return data if isinstance(data, dict) else None
-
-
-def _read_outcome_state(run_dir: Path) -> tuple[str, str] | None:
-    try:
-        with open(run_dir / OUTCOME_NAME, encoding="utf-8") as fh:
-            data = json.load(fh)
-        return str(data["state"]), str(data["key"])
-    except (OSError, ValueError, KeyError, TypeError):
-        return None
-
-
-def write_json_atomic(path: Path, data: Any) -> None:
-    """Write ``data`` as JSON next to ``path`` and move it into place (never half-written)."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(data, fh, indent=2, sort_keys=True)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
+        for dest, data in rendered.items():
+            target = _confined(tmp_dir, dest, what=f"deck {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            target.write_bytes(data)
+        for source, dest in copies:
+            target = _confined(tmp_dir, dest, what=f"copy {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(source, target)
+        for source, dest in links:
+            target = _confined(tmp_dir, dest, what=f"link {str(dest)!r}")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.symlink(source.resolve(), target)
+        write_json_atomic(tmp_dir / MANIFEST_NAME, manifest)
+        if run_dir.exists():
+            shutil.rmtree(run_dir)
+        os.replace(tmp_dir, run_dir)
     except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
+        shutil.rmtree(tmp_dir, ignore_errors=True)
         raise
 
 
+# long: parameter checks, context and spec of one run; the writing is in _render_files/_assemble
 def render_run(
     params: Mapping[str, float],
     *,
@@ -583,31 +590,7 @@ def render_run(
         run_dir=str(run_dir),
         params=dict(numbers_),
     )
-    env = _environment(template_root.resolve())
-    rendered: dict[PurePosixPath, bytes] = {}
-    for entry in decks.templates:
-        name = _template_name(entry, template_root)
-        out_name = name[:-3] if name.endswith(".j2") else name
-        dest = _validate_relative(out_name, what=f"template {entry!r}")
-        if dest in rendered:
-            raise DeckError(f"template {entry!r}: two templates render to the same path {dest}")
-        rendered[dest] = _render_one(env, name, context, template_root).encode("utf-8")
-    copies = [_source_and_dest(e, template_root, "copy") for e in decks.copies]
-    links = [_source_and_dest(e, template_root, "link") for e in decks.links]
-    seen = set(rendered)
-    for _, dest in copies + links:
-        if dest in seen:
-            raise DeckError(f"path {str(dest)!r} is produced twice (templates, copies, links)")
-        seen.add(dest)
-    for _, dest in links:
-        # Nothing may be written below a linked folder: it would land outside the run folder.
-        inside = sorted(str(p) for p in seen if dest in p.parents)
-        if inside:
-            raise DeckError(
-                f"link {str(dest)!r}: paths {inside} would be written through this link, "
-                "out of the run folder"
-            )
-
+    rendered, copies, links = _render_files(decks, context, template_root)
     deck_hashes = {str(p): hashlib.sha256(b).hexdigest() for p, b in rendered.items()}
     for source, dest in copies:
         if source.is_dir():
@@ -640,43 +623,18 @@ def render_run(
                 "the command changed); use a new run root or move that folder away"
             )
 
-    # --- assemble under a temporary name, then move into place -------------------------------
-    run_root.mkdir(parents=True, exist_ok=True)
-    for stale in run_root.glob(f".{rid}.partial-*"):
-        # Left by a render that was killed before its folder was moved into place.
-        shutil.rmtree(stale, ignore_errors=True)
-    tmp_dir = Path(tempfile.mkdtemp(prefix=f".{rid}.partial-", dir=run_root))
-    try:
-        for dest, data in rendered.items():
-            target = _confined(tmp_dir, dest, what=f"deck {str(dest)!r}")
-            target.parent.mkdir(parents=True, exist_ok=True)
-            target.write_bytes(data)
-        for source, dest in copies:
-            target = _confined(tmp_dir, dest, what=f"copy {str(dest)!r}")
-            target.parent.mkdir(parents=True, exist_ok=True)
-            shutil.copyfile(source, target)
-        for source, dest in links:
-            target = _confined(tmp_dir, dest, what=f"link {str(dest)!r}")
-            target.parent.mkdir(parents=True, exist_ok=True)
-            os.symlink(source.resolve(), target)
-        manifest = {
-            "format": MANIFEST_FORMAT,
-            "version": MANIFEST_VERSION,
-            "run_id": rid,
-            "point_index": int(point_index),
-            "weight": repr(weight),
-            "params": {k: repr(v) for k, v in clean.items()},
-            "argv": list(argv),
-            "deck_hashes": deck_hashes,
-            "links": {str(d): str(s.resolve()) for s, d in links},
-            "key": key,
-            "provenance": prov,
-        }
-        write_json_atomic(tmp_dir / MANIFEST_NAME, manifest)
-        if run_dir.exists():
-            shutil.rmtree(run_dir)
-        os.replace(tmp_dir, run_dir)
-    except BaseException:
-        shutil.rmtree(tmp_dir, ignore_errors=True)
-        raise
+    manifest = {
+        "format": MANIFEST_FORMAT,
+        "version": MANIFEST_VERSION,
+        "run_id": rid,
+        "point_index": int(point_index),
+        "weight": repr(weight),
+        "params": {k: repr(v) for k, v in clean.items()},
+        "argv": list(argv),
+        "deck_hashes": deck_hashes,
+        "links": {str(d): str(s.resolve()) for s, d in links},
+        "key": key,
+        "provenance": prov,
+    }
+    _assemble(run_root, rid, rendered, copies, links, manifest)
     return spec

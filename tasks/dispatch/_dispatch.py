@@ -35,16 +35,13 @@ from typing import Any
 from winnow.tasks.records import RunOutcome, RunSpec
 
 from ._decks import (
-    MANIFEST_NAME,
-    OUTCOME_NAME,
-    DeckError,
     DeckSpec,
     format_number,
     point_run_id,
-    read_manifest,
     render_run,
     run_key,
 )
+from ._folders import MANIFEST_NAME, OUTCOME_NAME, DeckError, read_manifest
 from ._process import (
     DEFAULT_TAIL_BYTES,
     RunOptions,

@@ -37,7 +37,7 @@ from typing import Any
 
 from winnow.tasks.records import RUN_STATES, Attempt, RunOutcome, RunSpec
 
-from ._decks import (
+from ._folders import (
     MANIFEST_NAME,
     OUTCOME_NAME,
     STDERR_NAME,

@@ -32,7 +32,7 @@ from typing import Any
 
 from winnow.tasks.records import Attempt, RunOutcome, RunSpec
 
-from ._decks import STDERR_NAME, STDOUT_NAME
+from ._folders import STDERR_NAME, STDOUT_NAME
 from ._process import (
     RunOptions,
     _journal,
