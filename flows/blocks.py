@@ -184,10 +184,38 @@ def load_study(path: str | Path) -> tuple[StudyConfig, str]:
     winnow.tasks.config.ConfigError
         Naming the file and the field (or the block) at fault.
     """
-    return load_config(
-        path,
-        preprocess=lambda d: expand_blocks(d, source=str(path)) if _has_block_refs(d) else d,
-    )
+    named: dict[str, Any] = {}
+
+    def expand(data: Any) -> Any:
+        if not _has_block_refs(data):
+            return data
+        named.update(
+            {k: data[k]["block"] for k in ("dispatch", "store") if isinstance(data.get(k), dict)}
+        )
+        named["resolved"] = expand_blocks(data, source=str(path))
+        return named["resolved"]
+
+    config, text = load_config(path, preprocess=expand)
+    if named:
+        text = resolved_text(text, named.pop("resolved"), named, source=str(path))
+    return config, text
+
+
+def resolved_text(text: str, resolved: Any, blocks: dict[str, Any], *, source: str) -> str:
+    """The config text a study records when its config names saved blocks (issue 18 item 5).
+
+    The blocks' values at the time of the run, not their names, decide what ran: the
+    recorded text is the config with every block reference replaced by the block's values
+    (so editing a block makes a new revision, and a rerun repeats what was recorded), then
+    the file as written, as comments.
+    """
+    import yaml
+
+    names = ", ".join(f"{k}: block {v!r}" for k, v in sorted(blocks.items()))
+    head = f"# winnow: {Path(source).name} with the saved blocks it names resolved ({names})\n"
+    written = "".join(f"# {line}\n" for line in text.splitlines())
+    body = yaml.safe_dump(resolved, sort_keys=False, allow_unicode=True)
+    return f"{head}{body}# --- {Path(source).name} as written ---\n{written}"
 
 
 def _load(cls: type[Block], name: Any, where: str) -> Any:

@@ -182,6 +182,30 @@ def test_study_naming_a_saved_solver_block_uses_its_templates_and_formats(
         # Python's format mini-language is the reference for the two specs
         assert deck == f"a = {format(a, '.4e')}\nb = {format(b, '+.3f')}\n", deck
         assert deck != f"a = {a!r}\nb = {b!r}\n"  # not the default shortest round trip
+    # issue 18 item 5: the store records the block's values, so editing the block makes a
+    # new revision whose runs get new folders; the finished runs of r0001 stay as they were
+    with RunStore.open_read(folder / "study.h5") as store:
+        first_text = store.read_config_text()
+    assert "block 'line-test-solver'" in first_text and "+.3f" in first_text
+    SolverSettings.load("line-test-solver").model_copy(
+        update={"formats": {"a": ".2e", "b": "+.3f"}}
+    ).save("line-test-solver", overwrite=True)
+    res = CliRunner().invoke(app, ["run", str(config)])
+    assert res.exit_code == 0, (res.output, res.exception)
+    with RunStore.open_read(folder / "study.h5") as store:
+        assert store.revisions() == ["r0001", "r0002"]
+        assert ".2e" in store.read_config_text("r0002") and ".2e" not in first_text
+        new_specs, new_outcomes = store.read_runs("r0002")
+    assert [o.state for o in new_outcomes] == ["succeeded"] * 4
+    for old_spec, spec in zip(specs, new_specs, strict=True):
+        assert spec.run_dir != old_spec.run_dir
+        assert (
+            (spec.run_dir / "line.deck")
+            .read_text()
+            .startswith(f"a = {format(spec.params['a'], '.2e')}\n")
+        )
+        a = old_spec.params["a"]
+        assert (old_spec.run_dir / "line.deck").read_text().startswith(f"a = {format(a, '.4e')}")
 
 
 # --------------------------------------------------------------------------------------------
