@@ -20,8 +20,8 @@ from pathlib import Path
 import yaml
 from prefect import flow, get_run_logger
 
-from winnow.flows._study_end import StudyRefused, check_study_end, reasons_text
-from winnow.flows.study import StudyResult, _dispatch, _report, recorded_values, summarise
+from winnow.flows._orchestrate import StudyResult, dispatch_runs, finish, recorded_values
+from winnow.flows._study_end import StudyRefused, reasons_text
 from winnow.tasks.config import parse_config
 from winnow.tasks.prefect_tasks import collect_task, prepare_runs_task
 from winnow.tasks.records import RunOutcome, RunSpec
@@ -125,7 +125,7 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
                 s.run_id: f"{outcomes[s.run_id].state} before" for s in todo if s.run_id in outcomes
             }
             ran.update({s.run_id: "added point" for s in todo if s.run_id not in outcomes})
-            outcomes.update(_dispatch(config, base, todo, w.successful_runs_by_key(), log))
+            outcomes.update(dispatch_runs(config, base, todo, w.successful_runs_by_key(), log))
         else:
             positions = [
                 k
@@ -144,7 +144,7 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
                 len(new_specs),
             )
             w.write_selection(rev, new_sel)
-            outcomes.update(_dispatch(config, base, new_specs, w.successful_runs_by_key(), log))
+            outcomes.update(dispatch_runs(config, base, new_specs, w.successful_runs_by_key(), log))
             ran = {s.run_id: "substitute for a point that did not succeed" for s in new_specs}
             for k in positions:
                 old = _spec_of_point(specs, int(selection.indices[k]))
@@ -174,14 +174,11 @@ def rerun_flow(store: str, replace: bool = False, extend: int = 0) -> StudyResul
             recorded=recorded_values(w, outcomes.values()),
         )
         w.write_results(rev, values, estimates)
-    result = summarise(store_path, rev, in_selection, outcomes, estimates, values=values)
-    result.report = str(_report(store_path, rev, config.study.name))
-    result.caution = config.study.caution
-    result.ran = ran
     if ran:
         log.info("rerun: %s", reasons_text(ran))
-    check_study_end(result, config.study.name, store_path, again="winnow run CONFIG")
-    return result
+    return finish(
+        store_path, rev, in_selection, outcomes, estimates, config, ran=ran, values=values
+    )
 
 
 #: inputs of a revision that are part of every run key (deck templates, staged copies)

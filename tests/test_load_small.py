@@ -35,12 +35,12 @@ def _fails_first(x: float, y: float) -> bool:
 
 
 def test_sixty_points_all_recorded_rerun_fixes_failures(tmp_path, prefect_harness, monkeypatch):
-    from winnow.flows import study
+    from winnow.flows import _orchestrate
     from winnow.flows.rerun import rerun_flow
 
     # dispatch in batches of 25 (3 subflows), as a study of thousands of runs is dispatched
     # in batches of 400 (benchmarks/bench_load.py runs 2,000 points through that path)
-    monkeypatch.setattr(study, "_DISPATCH_BATCH", 25)
+    monkeypatch.setattr(_orchestrate, "_DISPATCH_BATCH", 25)
 
     make_study(
         tmp_path,
