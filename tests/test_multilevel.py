@@ -89,10 +89,10 @@ def test_two_level_nested_estimate_is_the_multi_fidelity_estimate():
     # control_variate["mean"]: chain mean of the cheap model + weighted mean of costly minus
     # cheap at the points; Peherstorfer et al. 2016), which is the two-level telescoping sum
     # with the cheap model as level 0 on every chain row (weights 1/n) and the costly solver
-    # as level 1 on the thinned points, nested in the chain (Giles 2015, Section 1.1 calls
-    # two-level MLMC the control variate with coefficient one). Both sides add the same
-    # float64 terms, possibly in another order: the rounding of sums of n = 3000 terms is a
-    # few 1e-13 relative at worst, so rtol 1e-12.
+    # as level 1 on the thinned points, nested in the chain (Giles 2013, arXiv:1304.5472,
+    # Section 1.1: two-level MLMC is the control variate with coefficient one). Both sides
+    # add the same float64 terms, possibly in another order: the rounding of sums of
+    # n = 3000 terms is a few 1e-13 relative at worst, so rtol 1e-12.
     gen = np.random.default_rng(5)
     chain = gen.normal(size=(3000, 2)) * [1.0, 0.5] + [0.2, -1.0]
 
@@ -192,7 +192,7 @@ def test_with_level_equals_recomputing_everything():
 # the allocation
 # --------------------------------------------------------------------------------------------
 def test_giles_allocation_hand_computed():
-    # Source: Giles (2008), Section 2 / Giles (2015), Section 1.3: for variance eps^2,
+    # Source: Giles (2008), Section 2 (from memory; Giles 2015 repeats it): for variance eps^2,
     # N_l = eps^-2 sqrt(V_l / C_l) sum_k sqrt(V_k C_k). By hand for V = (4, 1, 0.25),
     # C = (1, 4, 16): sqrt(V C) = (2, 2, 2), sum 6; sqrt(V / C) = (2, 0.5, 0.125);
     # eps = 0.1: N = 100 * 6 * (2, 0.5, 0.125) = (1200, 300, 75), cost 1200 + 1200 + 1200
@@ -262,7 +262,7 @@ def test_more_runs_for_a_target_standard_error():
 
 
 def test_correction_costs_and_nested_allocation():
-    # Source: the pairing's definition (common practice in MLMC, Giles 2015 Section 1.3):
+    # Source: the pairing's definition (common practice in MLMC):
     # a nested level-l point reuses its coarser run, so one correction sample costs C_l; a
     # disjoint one needs both runs, C_l + C_{l-1}.
     np.testing.assert_allclose(correction_costs([1.0, 4.0, 16.0], "nested"), [1, 4, 16])

@@ -2,9 +2,10 @@
 
 Levels ``l = 0..L`` are fidelities of the solver (a cheap model on every chain row may be
 level 0), each costlier and closer to the truth than the one below. The finest level's
-expectation is the telescoping sum (Giles 2008, Section 2, the identity at the start of the
-method's description; equation numbers here are cited from memory and not checked against the
-paper)
+expectation is the telescoping sum (Giles 2008, Section 2, where the method is set out; Giles
+2015 reviews it). The citations are from memory and name sections only: the papers'
+equation numbers were not recalled reliably and are not checked, so the ``Eq. (n)`` tags
+below number this module's equations, not the papers'.
 
     E[Q_L] = E[Q_0] + sum_{l=1}^{L} E[Q_l - Q_{l-1}],                            # Eq. (1)
 
@@ -22,13 +23,13 @@ is ``sqrt(sum_l V_l / N_l)`` (Giles 2008, Section 2). Levels that share points (
 pairing, or a cheap level 0 on the whole chain) are not: for levels ``k < l`` sharing points
 ``S`` the covariance of their means is ``sum_{i in S} w_i^k w_i^l Cov(Y_k, Y_l)`` under the
 same model of the points as draws, and ``2 x`` that is added (with ``Cov`` the weighted
-covariance on the shared points, :func:`_shared_covariance`). The independent form is kept alongside
-(``se_independent``).
+covariance on the shared points, :func:`_shared_covariance`). The independent form is kept
+alongside (``se_independent``).
 
 The allocation: with ``v_l`` the variance one run adds at level ``l`` and ``C_l`` the cost of
 one sample of its correction, minimising ``sum_l v_l / N_l`` at total cost
 ``B = sum_l N_l C_l`` (or the cost at variance ``eps^2``) by a Lagrange multiplier gives
-``N_l`` proportional to ``sqrt(v_l / C_l)`` (Giles 2008, Section 2; Giles 2015, Section 1.3):
+``N_l`` proportional to ``sqrt(v_l / C_l)`` (Giles 2008, Section 2; Giles 2015):
 
     N_l = eps^-2 sqrt(v_l / C_l) sum_k sqrt(v_k C_k)      for variance eps^2,    # Eq. (3)
     N_l = B sqrt(v_l / C_l) / sum_k sqrt(v_k C_k)         for cost B.            # Eq. (4)
@@ -36,14 +37,19 @@ one sample of its correction, minimising ``sum_l v_l / N_l`` at total cost
 Adapted to weighted points: ``v_l = V_l m_l / N_l`` keeps each level's design effect
 ``m_l / N_l`` (Kish 1965) as it is when runs are added, so ``V_l / N_l`` becomes
 ``v_l / m_l'`` with ``m_l'`` runs. The shared-point covariances are left out of the
-allocation (the published rule assumes independent levels).
+allocation (the published rule assumes independent levels). The target is the standard error
+alone: Giles (2008) gives half the mean square error to the variance and half to the finest
+level's bias, which the runs here cannot estimate.
 
 References
 ----------
 .. [1] Giles, M. B. (2008). Multilevel Monte Carlo path simulation. Operations Research
    56(3), 607-617.
 .. [2] Giles, M. B. (2015). Multilevel Monte Carlo methods. Acta Numerica 24, 259-328.
-.. [3] Kish, L. (1965). Survey Sampling. Wiley, New York.
+.. [3] Giles, M. B. (2013). Multilevel Monte Carlo methods. In Monte Carlo and Quasi-Monte
+   Carlo Methods 2012, Springer; arXiv:1304.5472. Section 1.1, "Control variates and
+   two-level MLMC": two levels are a control variate with coefficient one.
+.. [4] Kish, L. (1965). Survey Sampling. Wiley, New York.
 """
 
 from __future__ import annotations
@@ -497,7 +503,7 @@ def optimal_allocation(
 
     References
     ----------
-    Giles (2008), Section 2; Giles (2015), Section 1.3.
+    Giles (2008), Section 2; Giles (2015).
     """
     v, c, minimum = _plan_inputs(variance_per_run, costs, minimum)
     if (target_se is None) == (cost_budget is None):
